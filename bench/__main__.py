@@ -1,0 +1,7 @@
+"""Allow `python -m eaves`."""
+
+import sys
+
+from eaves.cli import main
+
+sys.exit(main())

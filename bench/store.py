@@ -1,0 +1,268 @@
+"""Open the SQL store, write a whole run in one transaction, and answer the queries the CLI needs."""
+
+from __future__ import annotations
+
+import datetime as dt
+import os
+from pathlib import Path
+from typing import Optional
+
+from sqlalchemy import create_engine, event, func, select, text
+from sqlalchemy.engine import Engine, make_url
+from sqlalchemy.exc import ArgumentError, DatabaseError, OperationalError
+from sqlalchemy.orm import Session, selectinload
+
+from eaves.errors import StoreError
+from eaves.models import Base, Host, Measurement, Placement, Run
+from eaves.records import FIGURE_UNITS, Figure, PlacedLayer, RunRecord, RunSummary, StoredRun
+
+DEFAULT_DB_PATH = Path("results") / "eaves.db"
+
+
+def default_url() -> str:
+    """`EAVES_DB` if set, else the SQLite file results/eaves.db under the current directory."""
+    return os.environ.get("EAVES_DB") or f"sqlite:///{DEFAULT_DB_PATH}"
+
+
+def mask_url(url: str) -> str:
+    """The URL with its password replaced, for anything shown to a person or written to a file."""
+    try:
+        return make_url(url).render_as_string(hide_password=True)
+    except ArgumentError:
+        return "<unparsable store URL>"
+
+
+def _sqlite_pragmas(dbapi_connection, _record) -> None:
+    cursor = dbapi_connection.cursor()
+    cursor.execute("PRAGMA busy_timeout = 30000")
+    cursor.execute("PRAGMA foreign_keys = ON")
+    cursor.close()
+
+
+class Store:
+    """A connection to one store (SQLite file or server), with the schema in place."""
+
+    def __init__(self, url: Optional[str] = None, create: bool = True):
+        self.url = url or default_url()
+        self.shown_url = mask_url(self.url)
+        try:
+            parsed = make_url(self.url)
+        except ArgumentError:
+            raise StoreError(f"store {self.shown_url}: not a database URL (example: sqlite:///results/eaves.db)") from None
+        self.is_sqlite = parsed.get_backend_name() == "sqlite"
+        if self.is_sqlite:
+            self._prepare_sqlite_file(parsed.database, create)
+            self.engine: Engine = create_engine(self.url, connect_args={"timeout": 30})
+            event.listen(self.engine, "connect", _sqlite_pragmas)
+        else:
+            self.engine = create_engine(self.url, pool_pre_ping=True, connect_args={"connect_timeout": 10})
+        self._ensure_schema(create)
+
+    def _prepare_sqlite_file(self, database: Optional[str], create: bool) -> None:
+        if not database or database == ":memory:":
+            return
+        path = Path(database)
+        if path.exists():
+            if not path.is_file():
+                raise StoreError(f"store {path}: not a file")
+            if not os.access(path, os.R_OK):
+                raise StoreError(f"store {path}: not readable")
+            with open(path, "rb") as fh:
+                head = fh.read(16)
+            if head and head != b"SQLite format 3\x00":
+                raise StoreError(f"store {path}: not an SQLite database (left untouched)")
+            return
+        if not create:
+            raise StoreError(f"store {path}: no such file")
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as err:
+            raise StoreError(f"store {path}: cannot create folder {path.parent}: {err.strerror}") from err
+        if not os.access(path.parent, os.W_OK):
+            raise StoreError(f"store {path}: folder {path.parent} is not writable")
+
+    def _ensure_schema(self, create: bool) -> None:
+        try:
+            with self.engine.begin() as conn:
+                if self.is_sqlite:
+                    conn.execute(text("PRAGMA journal_mode=WAL"))
+                Base.metadata.create_all(conn)
+        except OperationalError as err:
+            raise StoreError(f"store {self.shown_url}: cannot open: {_short(err)}") from err
+        except DatabaseError as err:
+            raise StoreError(f"store {self.shown_url}: not a usable database: {_short(err)}") from err
+
+    # -- writing ---------------------------------------------------------------------------
+    def save_run(self, record: RunRecord) -> str:
+        """Write the host (if new), the run and all its figures in one transaction; returns the UUID."""
+        try:
+            with Session(self.engine) as session, session.begin():
+                host = session.scalar(select(Host).where(Host.host_key == record.host_key))
+                if host is None:
+                    host = Host(host_key=record.host_key, hostname=record.hostname,
+                                fingerprint=record.fingerprint, facts=record.host_facts)
+                    session.add(host)
+                    session.flush()
+                run = Run(host_id=host.id, kind=record.kind, started_at=record.started_at,
+                          ended_at=record.ended_at, status=record.status,
+                          eaves_version=record.eaves_version, params=record.params,
+                          facts=record.host_facts, tag=record.tag, note=record.note,
+                          git_describe=record.git_describe,
+                          ceilings_run_uuid=record.ceilings_run_uuid)
+                if record.uuid:
+                    run.uuid = record.uuid
+                run.measurements = [_measurement_row(f) for f in record.figures]
+                run.placements = [_placement_row(p) for p in record.placements]
+                session.add(run)
+                session.flush()
+                record.uuid = run.uuid
+        except (OperationalError, DatabaseError) as err:
+            raise StoreError(f"store {self.shown_url}: could not save run: {_short(err)}") from err
+        return record.uuid
+
+    # -- reading ---------------------------------------------------------------------------
+    def hosts(self) -> list[tuple[str, str, int, Optional[dt.datetime]]]:
+        """(host_key, hostname, number of runs, last run start) for every host."""
+        with Session(self.engine) as session:
+            rows = session.execute(
+                select(Host.host_key, Host.hostname, func.count(Run.id), func.max(Run.started_at))
+                .outerjoin(Run).group_by(Host.id).order_by(Host.hostname, Host.host_key)).all()
+        return [tuple(r) for r in rows]
+
+    def runs(self, host: Optional[str] = None, limit: Optional[int] = None,
+             status: Optional[str] = None, kind: Optional[str] = None) -> list[RunSummary]:
+        """Runs, newest first, optionally of one host (host key or hostname)."""
+        with Session(self.engine) as session:
+            q = select(Run).join(Host).options(selectinload(Run.host))
+            if host:
+                q = q.where((Host.host_key == host) | (Host.hostname == host))
+            if status:
+                q = q.where(Run.status == status)
+            if kind:
+                q = q.where(Run.kind == kind)
+            q = q.order_by(Run.started_at.desc(), Run.id.desc())
+            if limit:
+                q = q.limit(limit)
+            runs = session.scalars(q).all()
+            counts = self._counts(session, [r.id for r in runs])
+            return [_summary(r, *counts.get(r.id, (0, 0))) for r in runs]
+
+    def _counts(self, session: Session, ids: list[int]) -> dict[int, tuple[int, int]]:
+        if not ids:
+            return {}
+        m = dict(session.execute(select(Measurement.run_id, func.count()).where(
+            Measurement.run_id.in_(ids)).group_by(Measurement.run_id)).all())
+        p = dict(session.execute(select(Placement.run_id, func.count()).where(
+            Placement.run_id.in_(ids)).group_by(Placement.run_id)).all())
+        return {i: (m.get(i, 0), p.get(i, 0)) for i in ids}
+
+    def resolve_run(self, ref: str) -> int:
+        """Run id from an id number, a UUID or a unique UUID prefix (at least 4 characters)."""
+        with Session(self.engine) as session:
+            if ref.isdigit() and session.get(Run, int(ref)) is not None:
+                return int(ref)
+            if len(ref) >= 4:
+                ids = session.scalars(select(Run.id).where(Run.uuid.startswith(ref.lower()))).all()
+                if len(ids) == 1:
+                    return ids[0]
+                if len(ids) > 1:
+                    raise StoreError(f"run {ref!r}: ambiguous, {len(ids)} runs start with it", exit_code=2)
+        raise StoreError(f"run {ref!r}: no such run in {self.shown_url}", exit_code=2)
+
+    def latest_complete_run(self, host: Optional[str] = None, kind: str = "survey") -> Optional[int]:
+        """Id of the newest complete run of a host (host key or hostname)."""
+        with Session(self.engine) as session:
+            q = select(Run.id).join(Host).where(Run.status == "complete", Run.kind == kind)
+            if host:
+                q = q.where((Host.host_key == host) | (Host.hostname == host))
+            return session.scalar(q.order_by(Run.started_at.desc(), Run.id.desc()).limit(1))
+
+    def load_run(self, run_id: int) -> StoredRun:
+        """A run with its figures and placements."""
+        with Session(self.engine) as session:
+            run = session.scalar(select(Run).where(Run.id == run_id).options(
+                selectinload(Run.host), selectinload(Run.measurements), selectinload(Run.placements)))
+            if run is None:
+                raise StoreError(f"run {run_id}: no such run in {self.shown_url}", exit_code=2)
+            figures = tuple(_figure(m) for m in run.measurements)
+            placements = tuple(_placed(p) for p in run.placements)
+            return StoredRun(_summary(run, len(figures), len(placements)), dict(run.params),
+                             dict(run.facts), dict(run.host.facts), run.ceilings_run_uuid,
+                             figures, placements)
+
+
+def _short(err: Exception) -> str:
+    """First line of a driver error, without SQL or parameters, and with no password in it."""
+    orig = getattr(err, "orig", None) or err
+    return str(orig).strip().splitlines()[0] if str(orig).strip() else type(orig).__name__
+
+
+def _measurement_row(f: Figure) -> Measurement:
+    values = {unit: None for unit in FIGURE_UNITS}
+    values[f.unit] = f.median
+    q1, q3 = _quartiles(f.samples)
+    return Measurement(suite=f.suite, kernel=f.kernel, variant=f.variant, dtype=f.dtype,
+                       threads=f.threads, working_set_bytes=f.working_set_bytes,
+                       cache_level=f.cache_level, stride_elems=f.stride_elems, shape=f.shape,
+                       best=f.best, q1=q1, q3=q3, cv=_cv(f.samples), samples=list(f.samples),
+                       repetitions=f.repetitions, min_seconds=f.min_seconds, extra=f.extra, **values)
+
+
+def _figure(m: Measurement) -> Figure:
+    unit = next(u for u in FIGURE_UNITS if getattr(m, u) is not None)
+    return Figure(suite=m.suite, kernel=m.kernel, dtype=m.dtype, threads=m.threads, unit=unit,
+                  samples=tuple(m.samples), repetitions=m.repetitions, min_seconds=m.min_seconds,
+                  working_set_bytes=m.working_set_bytes, cache_level=m.cache_level,
+                  stride_elems=m.stride_elems, shape=m.shape, variant=m.variant,
+                  extra=dict(m.extra or {}))
+
+
+def _placement_row(p: PlacedLayer) -> Placement:
+    return Placement(layer=p.layer, kind=p.kind, dtype=p.dtype, threads=p.threads, batch=p.batch,
+                     seconds=p.seconds, samples=list(p.samples), flops=p.flops, bytes=p.bytes,
+                     flops_per_byte=p.flops_per_byte, flops_per_s=p.flops_per_s,
+                     bytes_per_s=p.bytes_per_s, attainable_flops_per_s=p.attainable_flops_per_s,
+                     efficiency=p.efficiency, bound=p.bound, roof=p.roof, extra=p.extra)
+
+
+def _placed(p: Placement) -> PlacedLayer:
+    return PlacedLayer(layer=p.layer, kind=p.kind, dtype=p.dtype, threads=p.threads, batch=p.batch,
+                       seconds=p.seconds, samples=tuple(p.samples), flops=p.flops, bytes=p.bytes,
+                       flops_per_byte=p.flops_per_byte, flops_per_s=p.flops_per_s,
+                       bytes_per_s=p.bytes_per_s, attainable_flops_per_s=p.attainable_flops_per_s,
+                       efficiency=p.efficiency, bound=p.bound, roof=p.roof, extra=dict(p.extra or {}))
+
+
+def _summary(run: Run, n_figures: int, n_placements: int) -> RunSummary:
+    return RunSummary(id=run.id, uuid=run.uuid, host_key=run.host.host_key,
+                      hostname=run.host.hostname, kind=run.kind, status=run.status,
+                      started_at=_aware(run.started_at), ended_at=_aware(run.ended_at),
+                      tag=run.tag, note=run.note, git_describe=run.git_describe,
+                      eaves_version=run.eaves_version, n_figures=n_figures,
+                      n_placements=n_placements)
+
+
+def _aware(value: Optional[dt.datetime]) -> Optional[dt.datetime]:
+    """SQLite hands back naive datetimes; everything we store is UTC."""
+    if value is not None and value.tzinfo is None:
+        return value.replace(tzinfo=dt.timezone.utc)
+    return value
+
+
+def _quartiles(samples: tuple[float, ...]) -> tuple[float, float]:
+    import statistics
+
+    s = sorted(samples)
+    if len(s) < 2:
+        return s[0], s[0]
+    q = statistics.quantiles(s, n=4, method="inclusive")
+    return q[0], q[2]
+
+
+def _cv(samples: tuple[float, ...]) -> float:
+    import statistics
+
+    if len(samples) < 2:
+        return 0.0
+    mean = statistics.fmean(samples)
+    return statistics.stdev(samples) / mean if mean else 0.0

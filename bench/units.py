@@ -1,0 +1,60 @@
+"""Parse sizes typed by people and format figures for display; SI prefixes appear only here."""
+
+from __future__ import annotations
+
+import math
+import re
+
+from eaves.errors import InputError
+
+_BINARY = {"": 1, "b": 1, "k": 1024, "kib": 1024, "m": 1024**2, "mib": 1024**2,
+           "g": 1024**3, "gib": 1024**3, "t": 1024**4, "tib": 1024**4}
+_DECIMAL = {"kb": 1000, "mb": 1000**2, "gb": 1000**3, "tb": 1000**4}
+_SIZE = re.compile(r"^\s*([0-9]*\.?[0-9]+)\s*([a-zA-Z]*)\s*$")
+
+
+def parse_size(text: str, what: str = "size") -> int:
+    """Bytes from '64KiB', '1.5GiB', '512M', '4096', '2GB'; an unknown unit is an InputError."""
+    m = _SIZE.match(str(text))
+    if not m:
+        raise InputError(f"{what}: cannot read {text!r} as a size (examples: 4096, 64KiB, 2GiB)")
+    number, unit = float(m.group(1)), m.group(2).lower()
+    factor = _BINARY.get(unit) or _DECIMAL.get(unit)
+    if factor is None:
+        raise InputError(f"{what}: unknown unit {m.group(2)!r} in {text!r} (use B, KiB, MiB, GiB, TiB, KB, MB, GB)")
+    value = int(round(number * factor))
+    if value <= 0:
+        raise InputError(f"{what}: {text!r} must be above zero")
+    return value
+
+
+def parse_int_list(text: str, what: str) -> list[int]:
+    """'1,2,4' -> [1, 2, 4]; anything else is an InputError naming `what`."""
+    try:
+        values = [int(part) for part in str(text).split(",") if part.strip()]
+    except ValueError:
+        raise InputError(f"{what}: {text!r} is not a comma-separated list of whole numbers") from None
+    if not values:
+        raise InputError(f"{what}: empty list")
+    return values
+
+
+def format_bytes(n: float | None) -> str:
+    """1536 -> '1.5 KiB' (binary prefixes, as sizes of memory are quoted)."""
+    if n is None:
+        return "-"
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
+        if abs(n) < 1024 or unit == "TiB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.3g} {unit}"
+        n /= 1024
+    return f"{n} B"
+
+
+def format_rate(value: float | None, unit: str) -> str:
+    """3.2e10, 'B/s' -> '32.0 GB/s' (decimal prefixes, as rates are quoted)."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    for prefix, scale in (("T", 1e12), ("G", 1e9), ("M", 1e6), ("k", 1e3)):
+        if abs(value) >= scale:
+            return f"{value / scale:.3g} {prefix}{unit}"
+    return f"{value:.3g} {unit}"

@@ -1,0 +1,1 @@
+"""JIT-compiled microkernels and their registry."""
