@@ -9,7 +9,10 @@ from typing import Annotated, Any, Optional
 from sqlalchemy import JSON, BigInteger, DateTime, Float, ForeignKey, Index, Integer, String, Text
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
-SCHEMA_VERSION = 1
+# The alembic revision this eaves writes and expects (bench/migrations/versions); a test checks
+# it is the head of the migration scripts. SCHEMA_VERSION counts the revisions.
+SCHEMA_REVISION = "0002"
+SCHEMA_VERSION = 2
 
 intpk = Annotated[int, mapped_column(Integer, primary_key=True, autoincrement=True)]
 name64 = Annotated[str, mapped_column(String(64))]
@@ -98,7 +101,7 @@ class Measurement(Base):
     extra: Mapped[dict[str, Any]]  # e.g. cache-line traffic, vector width, BLAS kernel
     run: Mapped[Run] = relationship(back_populates="measurements")
 
-    __table_args__ = (Index("ix_measurements_run_suite", "run_id", "suite"),)
+    __table_args__ = (Index("ix_measurements_run_suite_kernel", "run_id", "suite", "kernel"),)
 
 
 class Placement(Base):

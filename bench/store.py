@@ -2,21 +2,32 @@
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import os
+import random
+import time
 from pathlib import Path
-from typing import Optional
+from typing import Callable, Iterator, Optional, TypeVar
+from urllib.parse import quote, quote_plus
 
-from sqlalchemy import create_engine, event, func, select, text
-from sqlalchemy.engine import Engine, make_url
-from sqlalchemy.exc import ArgumentError, DatabaseError, OperationalError
+from sqlalchemy import create_engine, event, func, select
+from sqlalchemy.engine import Connection, Engine, make_url
+from sqlalchemy.exc import ArgumentError, DatabaseError, IntegrityError, OperationalError
 from sqlalchemy.orm import Session, selectinload
 
+from eaves import schema
 from eaves.errors import StoreError
-from eaves.models import Base, Host, Measurement, Placement, Run
+from eaves.models import SCHEMA_REVISION, Host, Measurement, Placement, Run, new_uuid
 from eaves.records import FIGURE_UNITS, Figure, PlacedLayer, RunRecord, RunSummary, StoredRun
 
 DEFAULT_DB_PATH = Path("results") / "eaves.db"
+CONNECT_TIMEOUT_SECONDS = 10  # a server that does not answer within this is unreachable
+BUSY_TIMEOUT_SECONDS = 30  # SQLite: how long a writer waits for another one's lock
+WRITE_ATTEMPTS = 6  # bounded retries of a write transaction that lost a race (locked, deadlock, ...)
+_RETRY_SQLSTATES = {"40001", "40P01", "55P03"}  # PostgreSQL: serialization, deadlock, lock busy
+
+T = TypeVar("T")
 
 
 def default_url() -> str:
@@ -32,31 +43,67 @@ def mask_url(url: str) -> str:
         return "<unparsable store URL>"
 
 
-def _sqlite_pragmas(dbapi_connection, _record) -> None:
+def is_server_url(url: str) -> bool:
+    """True for a database server (reached over a network), False for SQLite or an unusable URL."""
+    try:
+        return make_url(url).get_backend_name() != "sqlite"
+    except ArgumentError:
+        return False
+
+
+def _sqlite_connect(dbapi_connection, _record) -> None:
+    # Let SQLAlchemy's "begin" event emit BEGIN itself (pysqlite's own is late and deferred).
+    dbapi_connection.isolation_level = None
     cursor = dbapi_connection.cursor()
-    cursor.execute("PRAGMA busy_timeout = 30000")
+    cursor.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_SECONDS * 1000}")
     cursor.execute("PRAGMA foreign_keys = ON")
     cursor.close()
 
 
-class Store:
-    """A connection to one store (SQLite file or server), with the schema in place."""
+def _sqlite_begin(conn: Connection) -> None:
+    # Writers take the lock up front so that the busy timeout applies, instead of failing when a
+    # read transaction tries to become a write transaction after another process wrote.
+    conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get("eaves_write") else "BEGIN")
 
-    def __init__(self, url: Optional[str] = None, create: bool = True):
+
+class Store:
+    """A connection to one store (SQLite file or server), with the schema in place.
+
+    `create`: make the file and the schema when missing. `check_schema`: refuse a store of another
+    schema revision (False only for `eaves db`). `readonly`: SQLite only, never write the file.
+    """
+
+    def __init__(self, url: Optional[str] = None, create: bool = True, *, check_schema: bool = True,
+                 readonly: bool = False, connect_timeout: float = CONNECT_TIMEOUT_SECONDS):
         self.url = url or default_url()
         self.shown_url = mask_url(self.url)
         try:
             parsed = make_url(self.url)
         except ArgumentError:
             raise StoreError(f"store {self.shown_url}: not a database URL (example: sqlite:///results/eaves.db)") from None
+        self._secrets = _secrets_of(parsed.password)
         self.is_sqlite = parsed.get_backend_name() == "sqlite"
-        if self.is_sqlite:
-            self._prepare_sqlite_file(parsed.database, create)
-            self.engine: Engine = create_engine(self.url, connect_args={"timeout": 30})
-            event.listen(self.engine, "connect", _sqlite_pragmas)
-        else:
-            self.engine = create_engine(self.url, pool_pre_ping=True, connect_args={"connect_timeout": 10})
-        self._ensure_schema(create)
+        try:
+            if self.is_sqlite:
+                self._prepare_sqlite_file(parsed.database, create)
+                engine_url = parsed
+                if readonly and parsed.database:
+                    engine_url = parsed.set(database=f"file:{parsed.database}?mode=ro",
+                                            query={**parsed.query, "uri": "true"})
+                self.engine: Engine = create_engine(engine_url, connect_args={"timeout": BUSY_TIMEOUT_SECONDS})
+                event.listen(self.engine, "connect", _sqlite_connect)
+                event.listen(self.engine, "begin", _sqlite_begin)
+            else:
+                args = {"connect_timeout": max(1, int(round(connect_timeout)))} \
+                    if parsed.get_backend_name() == "postgresql" else {}
+                self.engine = create_engine(self.url, pool_pre_ping=True, connect_args=args)
+        except (ArgumentError, ImportError, ValueError) as err:
+            raise StoreError(f"store {self.shown_url}: cannot use this URL: {self._scrub(str(err))}") from None
+        self._write_engine = self.engine.execution_options(eaves_write=True)
+        self._readonly = readonly
+        self.revision: Optional[str] = None
+        if check_schema:
+            self._ensure_schema(create)
 
     def _prepare_sqlite_file(self, database: Optional[str], create: bool) -> None:
         if not database or database == ":memory:":
@@ -82,48 +129,111 @@ class Store:
             raise StoreError(f"store {path}: folder {path.parent} is not writable")
 
     def _ensure_schema(self, create: bool) -> None:
+        with self._errors("cannot open", name_store=True):
+            with self.engine.connect() as conn:
+                revision = schema.current_revision(conn)
+            if revision in (None, SCHEMA_REVISION):
+                self._use_wal()  # only once the file is known to be ours
+            if revision is None and create:
+                with self._write_engine.begin() as conn:
+                    revision = schema.create(conn)
+            schema.require_current(revision, self.shown_url)
+        self.revision = revision
+
+    def _use_wal(self) -> None:
+        """SQLite: write-ahead log, so readers never block the one writer (a persistent setting)."""
+        if not self.is_sqlite or self._readonly:
+            return
+        raw = self.engine.raw_connection()
         try:
-            with self.engine.begin() as conn:
-                if self.is_sqlite:
-                    conn.execute(text("PRAGMA journal_mode=WAL"))
-                Base.metadata.create_all(conn)
-        except OperationalError as err:
-            raise StoreError(f"store {self.shown_url}: cannot open: {_short(err)}") from err
+            cursor = raw.cursor()
+            if cursor.execute("PRAGMA journal_mode").fetchone()[0].lower() != "wal":
+                cursor.execute("PRAGMA journal_mode = WAL")
+            cursor.close()
+        finally:
+            raw.close()
+
+    def schema_revision(self) -> Optional[str]:
+        """The store's schema revision (None for an empty database)."""
+        with self._errors("cannot read the schema version", name_store=True), self.engine.connect() as conn:
+            return schema.current_revision(conn)
+
+    def upgrade_schema(self) -> tuple[Optional[str], str]:
+        """Migrate the store to the schema this eaves uses; returns (revision before, after)."""
+        with self._errors("cannot migrate", name_store=True):
+            with self._write_engine.begin() as conn:
+                before, after = schema.upgrade(conn)
+            self._use_wal()
+        self.revision = after
+        return before, after
+
+    def close(self) -> None:
+        """Close pooled connections (a store is usable again afterwards; it reconnects)."""
+        self.engine.dispose()
+
+    # -- errors and retries ----------------------------------------------------------------
+    def _scrub(self, message: str) -> str:
+        """The message without the URL's password, in any spelling a driver may echo."""
+        for secret in self._secrets:
+            message = message.replace(secret, "***")
+        return message
+
+    @contextlib.contextmanager
+    def _errors(self, action: str, name_store: bool = False) -> Iterator[None]:
+        """Turn driver errors into a one-line StoreError that names the store, never its password;
+        `name_store`: also put the store's name before our own StoreErrors (schema checks)."""
+        try:
+            yield
+        except StoreError as err:
+            message = self._scrub(str(err))
+            if name_store:
+                message = f"store {self.shown_url}: {message}"
+            raise StoreError(message, err.exit_code) from None
         except DatabaseError as err:
-            raise StoreError(f"store {self.shown_url}: not a usable database: {_short(err)}") from err
+            raise StoreError(f"store {self.shown_url}: {action}: {self._scrub(_short(err))}") from None
+        except (OSError, UnicodeError) as err:  # e.g. a driver failing to resolve a host name
+            raise StoreError(f"store {self.shown_url}: {action}: {self._scrub(str(err))}") from None
+
+    def write(self, work: Callable[[Session], T], action: str = "could not write") -> T:
+        """Run `work` in one write transaction, retried a bounded number of times when it lost a
+        race with another writer (SQLite lock, PostgreSQL deadlock or unique-key race)."""
+        with self._errors(action):
+            for attempt in range(1, WRITE_ATTEMPTS + 1):
+                try:
+                    with Session(self._write_engine) as session, session.begin():
+                        return work(session)
+                except (OperationalError, IntegrityError) as err:
+                    if attempt == WRITE_ATTEMPTS or not _retryable(err):
+                        raise
+                    time.sleep(random.uniform(0.5, 1.0) * min(2.0, 0.05 * 2 ** attempt))
+        raise AssertionError("unreachable")
 
     # -- writing ---------------------------------------------------------------------------
     def save_run(self, record: RunRecord) -> str:
-        """Write the host (if new), the run and all its figures in one transaction; returns the UUID."""
-        try:
-            with Session(self.engine) as session, session.begin():
-                host = session.scalar(select(Host).where(Host.host_key == record.host_key))
-                if host is None:
-                    host = Host(host_key=record.host_key, hostname=record.hostname,
-                                fingerprint=record.fingerprint, facts=record.host_facts)
-                    session.add(host)
-                    session.flush()
-                run = Run(host_id=host.id, kind=record.kind, started_at=record.started_at,
-                          ended_at=record.ended_at, status=record.status,
-                          eaves_version=record.eaves_version, params=record.params,
-                          facts=record.host_facts, tag=record.tag, note=record.note,
-                          git_describe=record.git_describe,
-                          ceilings_run_uuid=record.ceilings_run_uuid)
-                if record.uuid:
-                    run.uuid = record.uuid
-                run.measurements = [_measurement_row(f) for f in record.figures]
-                run.placements = [_placement_row(p) for p in record.placements]
-                session.add(run)
-                session.flush()
-                record.uuid = run.uuid
-        except (OperationalError, DatabaseError) as err:
-            raise StoreError(f"store {self.shown_url}: could not save run: {_short(err)}") from err
-        return record.uuid
+        """Write the host (if new), the run and all its figures in one transaction; returns the UUID.
+
+        Saving a record whose UUID is already stored writes nothing: a retried save never doubles."""
+        return self.add_run(record)[0]
+
+    def add_run(self, record: RunRecord) -> tuple[str, bool]:
+        """Like save_run; also says whether the run was written (False: its UUID was there)."""
+        if not record.uuid:
+            record.uuid = new_uuid()
+        return record.uuid, self.write(lambda session: _insert_record(session, record), "could not save run")
+
+    def has_run(self, uuid: str) -> bool:
+        with self._errors("cannot read"), Session(self.engine) as session:
+            return session.scalar(select(Run.id).where(Run.uuid == uuid)) is not None
+
+    def run_uuids(self) -> list[str]:
+        """UUIDs of every run, oldest first."""
+        with self._errors("cannot read"), Session(self.engine) as session:
+            return list(session.scalars(select(Run.uuid).order_by(Run.id)))
 
     # -- reading ---------------------------------------------------------------------------
     def hosts(self) -> list[tuple[str, str, int, Optional[dt.datetime]]]:
         """(host_key, hostname, number of runs, last run start) for every host."""
-        with Session(self.engine) as session:
+        with self._errors("cannot read"), Session(self.engine) as session:
             rows = session.execute(
                 select(Host.host_key, Host.hostname, func.count(Run.id), func.max(Run.started_at))
                 .outerjoin(Run).group_by(Host.id).order_by(Host.hostname, Host.host_key)).all()
@@ -132,7 +242,7 @@ class Store:
     def runs(self, host: Optional[str] = None, limit: Optional[int] = None,
              status: Optional[str] = None, kind: Optional[str] = None) -> list[RunSummary]:
         """Runs, newest first, optionally of one host (host key or hostname)."""
-        with Session(self.engine) as session:
+        with self._errors("cannot read"), Session(self.engine) as session:
             q = select(Run).join(Host).options(selectinload(Run.host))
             if host:
                 q = q.where((Host.host_key == host) | (Host.hostname == host))
@@ -158,7 +268,7 @@ class Store:
 
     def resolve_run(self, ref: str) -> int:
         """Run id from an id number, a UUID or a unique UUID prefix (at least 4 characters)."""
-        with Session(self.engine) as session:
+        with self._errors("cannot read"), Session(self.engine) as session:
             if ref.isdigit() and session.get(Run, int(ref)) is not None:
                 return int(ref)
             if len(ref) >= 4:
@@ -171,7 +281,7 @@ class Store:
 
     def latest_complete_run(self, host: Optional[str] = None, kind: str = "survey") -> Optional[int]:
         """Id of the newest complete run of a host (host key or hostname)."""
-        with Session(self.engine) as session:
+        with self._errors("cannot read"), Session(self.engine) as session:
             q = select(Run.id).join(Host).where(Run.status == "complete", Run.kind == kind)
             if host:
                 q = q.where((Host.host_key == host) | (Host.hostname == host))
@@ -179,7 +289,7 @@ class Store:
 
     def load_run(self, run_id: int) -> StoredRun:
         """A run with its figures and placements."""
-        with Session(self.engine) as session:
+        with self._errors("cannot read"), Session(self.engine) as session:
             run = session.scalar(select(Run).where(Run.id == run_id).options(
                 selectinload(Run.host), selectinload(Run.measurements), selectinload(Run.placements)))
             if run is None:
@@ -189,6 +299,43 @@ class Store:
             return StoredRun(_summary(run, len(figures), len(placements)), dict(run.params),
                              dict(run.facts), dict(run.host.facts), run.ceilings_run_uuid,
                              figures, placements)
+
+
+def _insert_record(session: Session, record: RunRecord) -> bool:
+    if session.scalar(select(Run.id).where(Run.uuid == record.uuid)) is not None:
+        return False
+    host = session.scalar(select(Host).where(Host.host_key == record.host_key))
+    if host is None:
+        host = Host(host_key=record.host_key, hostname=record.hostname,
+                    fingerprint=record.fingerprint, facts=record.host_facts)
+        session.add(host)
+        session.flush()
+    run = Run(uuid=record.uuid, host_id=host.id, kind=record.kind, started_at=record.started_at,
+              ended_at=record.ended_at, status=record.status,
+              eaves_version=record.eaves_version, params=record.params,
+              facts=record.host_facts, tag=record.tag, note=record.note,
+              git_describe=record.git_describe, ceilings_run_uuid=record.ceilings_run_uuid)
+    run.measurements = [_measurement_row(f) for f in record.figures]
+    run.placements = [_placement_row(p) for p in record.placements]
+    session.add(run)
+    return True
+
+
+def _retryable(err: Exception) -> bool:
+    """A write that lost a race and may succeed when repeated."""
+    if isinstance(err, IntegrityError):  # two writers added the same host (or run) at once
+        return True
+    orig = getattr(err, "orig", None)
+    if getattr(orig, "sqlstate", None) in _RETRY_SQLSTATES:
+        return True
+    message = str(orig).lower()
+    return "database is locked" in message or "database is busy" in message
+
+
+def _secrets_of(password: Optional[str]) -> tuple[str, ...]:
+    if not password:
+        return ()
+    return tuple(sorted({password, quote(password, safe=""), quote_plus(password)}, key=len, reverse=True))
 
 
 def _short(err: Exception) -> str:
