@@ -1,0 +1,427 @@
+"""Multiply-add peak and clock microkernels (numba + LLVM vector IR): the host's flat compute roofs.
+
+Each peak kernel runs `accumulators` independent register-resident vector chains inside one
+parallel region (one chain step = one vector multiply-add instruction). The vector code is
+written as LLVM IR through a numba `@intrinsic`, which sidesteps the loop vectoriser and its
+256-bit preference on AVX-512 hosts, and reaches instructions numba cannot express (half
+precision, bf16 and 8/16-bit integer dot products). Every call returns an int64 checksum
+the caller verifies against a closed form (float kernels) or a numpy int32 simulation
+(integer kernels), so no work can be dropped by the compiler.
+"""
+
+from __future__ import annotations
+
+import functools
+import re
+from dataclasses import dataclass
+
+import numpy as np
+from llvmlite import ir
+from numba import literally, njit, prange, types
+from numba.extending import intrinsic
+
+import llvmlite.binding as _ll
+
+_ll.initialize_native_asmparser()  # numba's object emitter needs it for the clock chain's inline asm
+
+STEPS = 1024  # chain steps per block call; fp16 stays exact: seed + STEPS < 2**11
+CHAIN_ADDS = 64  # dependent single-cycle adds per clock-chain block
+CHAIN_BLOCKS = 256  # clock-chain blocks per repetition
+INT8_PATTERN = 0x04030201  # unsigned bytes 1, 2, 3, 4 of the int8 kernel's fixed operand
+INT16_PATTERN = 0x00030002  # signed halves 2, 3 of the int16 kernel's fixed operand
+
+I32, I64 = ir.IntType(32), ir.IntType(64)
+
+
+class _BFloat(ir.Type):
+    """LLVM's bfloat type, which llvmlite's IR builder does not name."""
+
+    def _to_string(self):
+        return "bfloat"
+
+    def __eq__(self, other):
+        return isinstance(other, _BFloat)
+
+    def __hash__(self):
+        return hash("bfloat")
+
+
+ELEM = {"f64": ir.DoubleType(), "f32": ir.FloatType(), "f16": ir.HalfType()}
+
+
+@dataclass(frozen=True)
+class BlockSpec:
+    """What one block call computes: `accumulators` chains of `bits`-wide vectors, STEPS steps each."""
+
+    kind: str  # "fma" | "bf16dot" | "i8dot" | "i16dot"
+    elem: str  # accumulator element: "f64" "f32" "f16" or "i32"
+    bits: int  # vector register width
+    accumulators: int
+    intrinsic: str | None = None  # LLVM target intrinsic, None: portable vector IR
+
+    @property
+    def acc_lanes(self) -> int:
+        return self.bits // (16 if self.elem == "f16" else 64 if self.elem == "f64" else 32)
+
+    @property
+    def macs_per_instruction(self) -> int:
+        """Multiply-adds one chain step does (per vector instruction)."""
+        per_lane = {"fma": 1, "bf16dot": 2, "i16dot": 2, "i8dot": 4}[self.kind]
+        return self.acc_lanes * per_lane
+
+    @property
+    def macs_per_block(self) -> int:
+        return STEPS * self.accumulators * self.macs_per_instruction
+
+
+# ---------------------------------------------------------------- LLVM IR of one block
+
+
+def _splat(builder, x, vec):
+    v = builder.insert_element(ir.Constant(vec, ir.Undefined), x, ir.Constant(I32, 0))
+    return builder.shuffle_vector(v, v, ir.Constant(ir.VectorType(I32, vec.count), [0] * vec.count))
+
+
+def _to_bf16(builder, x):
+    """double -> bfloat by truncating the float32 bits (no runtime-library call; exact for 1.0)."""
+    bits = builder.bitcast(builder.fptrunc(x, ir.FloatType()), I32)
+    half = builder.trunc(builder.lshr(bits, ir.Constant(I32, 16)), ir.IntType(16))
+    return builder.bitcast(half, _BFloat())
+
+
+def _declare(module, name, ret, args):
+    fn = module.globals.get(name)
+    return fn if fn is not None else ir.Function(module, ir.FunctionType(ret, args), name)
+
+
+def _portable_dot(builder, acc, a, group, signed_a):
+    """acc + sum over groups of `group` of ext(a) * sext(bytes or halves of acc): LLVM picks the instruction."""
+    n = acc.type.count * group
+    small = ir.VectorType(ir.IntType(32 // group), n)
+    wide = ir.VectorType(I32, n)
+    av = builder.sext(a, wide) if signed_a else builder.zext(a, wide)
+    bv = builder.sext(builder.bitcast(acc, small), wide)
+    prod = builder.mul(av, bv)
+    out = acc
+    for k in range(group):
+        idx = ir.Constant(ir.VectorType(I32, acc.type.count), [j * group + k for j in range(acc.type.count)])
+        out = builder.add(out, builder.shuffle_vector(prod, prod, idx))
+    return out
+
+
+def _step_fn(builder, spec: BlockSpec, m, c):
+    """Operands that stay fixed for a block, and the function doing one chain step on one accumulator."""
+    module = builder.module
+    if spec.kind == "fma":
+        elem = ELEM[spec.elem]
+        vec = ir.VectorType(elem, spec.acc_lanes)
+        conv = (lambda v: v) if spec.elem == "f64" else (lambda v: builder.fptrunc(v, elem))
+        mv, cv = _splat(builder, conv(m), vec), _splat(builder, conv(c), vec)
+        fma = _declare(module, f"llvm.fma.v{spec.acc_lanes}{elem.intrinsic_name}", vec, [vec] * 3)
+        return vec, lambda acc: builder.call(fma, [acc, mv, cv])
+    if spec.kind == "bf16dot":
+        vec = ir.VectorType(ir.FloatType(), spec.acc_lanes)
+        pair = ir.VectorType(_BFloat(), 2 * spec.acc_lanes)
+        av, bv = (_splat(builder, _to_bf16(builder, v), pair) for v in (m, c))
+        fn = _declare(module, spec.intrinsic, vec, [vec, pair, pair])
+        return vec, lambda acc: builder.call(fn, [acc, av, bv])
+    # integer dot products: the fixed operand is a 32-bit pattern repeated, the other is the accumulator itself
+    group = 4 if spec.kind == "i8dot" else 2
+    vec = ir.VectorType(I32, spec.acc_lanes)
+    small = ir.VectorType(ir.IntType(32 // group), spec.acc_lanes * group)
+    av = builder.bitcast(_splat(builder, builder.fptosi(m, I32), vec), small)
+    if spec.intrinsic:
+        fn = _declare(module, spec.intrinsic, vec, [vec, small, small])
+        return vec, lambda acc: builder.call(fn, [acc, av, builder.bitcast(acc, small)])
+    return vec, lambda acc: _portable_dot(builder, acc, av, group, signed_a=(group == 2))
+
+
+def emit_block(builder, spec: BlockSpec, m, c, seed):
+    """IR for one block: every accumulator starts at `seed`, runs STEPS steps; returns their i64 sum."""
+    vec, step = _step_fn(builder, spec, m, c)
+    is_int = spec.elem == "i32"
+    start = _splat(builder, builder.fptosi(seed, I32) if is_int else
+                   (seed if spec.elem == "f64" else builder.fptrunc(seed, vec.element)), vec)
+    pre = builder.block
+    loop = builder.append_basic_block("peak.loop")
+    done = builder.append_basic_block("peak.done")
+    builder.branch(loop)
+    builder.position_at_end(loop)
+    i = builder.phi(I64)
+    i.add_incoming(ir.Constant(I64, 0), pre)
+    accs = []
+    for _ in range(spec.accumulators):
+        p = builder.phi(vec)
+        p.add_incoming(start, pre)
+        accs.append(p)
+    new = [step(p) for p in accs]
+    nxt = builder.add(i, ir.Constant(I64, 1))
+    for p, n in zip(accs, new):
+        p.add_incoming(n, loop)
+    i.add_incoming(nxt, loop)
+    builder.cbranch(builder.icmp_unsigned("<", nxt, ir.Constant(I64, STEPS)), loop, done)
+    builder.position_at_end(done)
+    total = ir.Constant(I64, 0)
+    wide = ir.VectorType(I64 if is_int else ir.DoubleType(), vec.count)
+    for n in new:
+        w = builder.sext(n, wide) if is_int else (n if spec.elem == "f64" else builder.fpext(n, wide))
+        for k in range(vec.count):
+            x = builder.extract_element(w, ir.Constant(I32, k))
+            total = builder.add(total, x if is_int else builder.fptosi(x, I64))
+    return total
+
+
+# ---------------------------------------------------------------- block specs and their numba entry points
+
+SPECS: list[BlockSpec] = []
+
+
+def _spec(*args, **kw) -> int:
+    SPECS.append(BlockSpec(*args, **kw))
+    return len(SPECS) - 1
+
+
+@intrinsic
+def _block(typingctx, index, m, c, seed):
+    if not isinstance(index, types.IntegerLiteral):
+        return None
+    spec = SPECS[index.literal_value]
+
+    def codegen(context, builder, signature, args):
+        return emit_block(builder, spec, args[1], args[2], args[3])
+
+    return types.int64(index, types.float64, types.float64, types.float64), codegen
+
+
+@njit(parallel=True, cache=True)
+def _peak(index, reps, nthreads, m, c):
+    """`reps` blocks per thread, seeds 1..8 in turn (so no block is loop-invariant); int64 checksum."""
+    partial = np.zeros(nthreads, np.int64)
+    for t in prange(nthreads):
+        total = 0
+        for r in range(reps):
+            total += _block(literally(index), m, c, float((r & 7) + 1))
+        partial[t] = total
+    return partial.sum()
+
+
+@functools.lru_cache(maxsize=None)
+def _entry(index: int):
+    """The compiled `_peak` for one block, called directly: the dispatcher would retry int64 typing each call."""
+    m, c = OPERANDS[SPECS[index].kind]
+    _peak(index, 1, 1, m, c)  # compile, or load from numba's cache
+    sig = next(s for s in _peak.signatures if getattr(s[0], "literal_value", None) == index)
+    return _peak.overloads[sig].entry_point
+
+
+# ---------------------------------------------------------------- effective clock: a dependent add chain
+
+
+def _chain_asm(arch: str) -> str | None:
+    # register-register adds: some cores fold add-immediate chains at rename, faster than one per cycle
+    one = {"x86_64": "addq $1, $0", "aarch64": "add $0, $0, $1"}.get(arch)
+    return None if one is None else "\n\t".join([one] * CHAIN_ADDS)
+
+
+@intrinsic
+def _add_chain(typingctx, x):
+    import platform
+
+    text = _chain_asm(platform.machine())
+    if text is None:
+        return None
+
+    def codegen(context, builder, signature, args):
+        one = ir.Constant(I64, 1)
+        return builder.asm(ir.FunctionType(I64, [I64, I64]), text, "=r,r,0", [one, args[0]], side_effect=True)
+
+    return types.int64(types.int64), codegen
+
+
+@njit(parallel=True, cache=True)
+def clock_chain(reps, nthreads):
+    """CHAIN_ADDS * CHAIN_BLOCKS dependent adds per repetition per thread; returns the total of all chains."""
+    partial = np.zeros(nthreads, np.int64)
+    for t in prange(nthreads):
+        x = 0
+        for _ in range(reps):
+            for _ in range(CHAIN_BLOCKS):
+                x = _add_chain(x)
+        partial[t] = x
+    return partial.sum()
+
+
+def clock_expected(reps: int, nthreads: int) -> int:
+    return nthreads * reps * CHAIN_BLOCKS * CHAIN_ADDS
+
+
+# ---------------------------------------------------------------- checksums
+
+
+def _wrap64(x: int) -> int:
+    x &= (1 << 64) - 1
+    return x - (1 << 64) if x >= 1 << 63 else x
+
+
+@functools.lru_cache(maxsize=None)
+def block_values(spec: BlockSpec) -> tuple[int, ...]:
+    """What one block returns for seeds 1..8: closed form for floats, numpy int32 simulation for integers."""
+    n = spec.accumulators * spec.acc_lanes
+    if spec.kind == "fma":  # fma(acc, 1, 1) adds one per step, exactly
+        return tuple(n * (s + STEPS) for s in range(1, 9))
+    if spec.kind == "bf16dot":  # acc + 1*1 + 1*1 per step
+        return tuple(n * (s + 2 * STEPS) for s in range(1, 9))
+    # integers: every lane of every accumulator runs the same chain, so one int32 per seed suffices
+    group, pattern = (4, INT8_PATTERN) if spec.kind == "i8dot" else (2, INT16_PATTERN)
+    small = np.int8 if group == 4 else np.int16
+    a = np.array([pattern], np.int32).view(np.uint8 if group == 4 else np.int16).astype(np.int32)
+    acc = np.arange(1, 9, dtype=np.int32)
+    with np.errstate(over="ignore"):
+        for _ in range(STEPS):
+            parts = acc.view(small).reshape(8, group).astype(np.int32)
+            acc = acc + (parts * a).sum(axis=1, dtype=np.int32)
+    return tuple(n * int(v) for v in acc)
+
+
+def peak_expected(spec: BlockSpec, reps: int, nthreads: int) -> int:
+    values = block_values(spec)
+    per_thread = sum(values[s] * (reps // 8 + (1 if s < reps % 8 else 0)) for s in range(8))
+    return _wrap64(nthreads * per_thread)
+
+
+# ---------------------------------------------------------------- the registry
+
+# The multiply-add operands the float kernels use: fma(acc, M, C) with M = C = 1 (run time values,
+# so the compiler cannot fold them); the integer kernels pass their fixed operand in M.
+OPERANDS = {"fma": (1.0, 1.0), "bf16dot": (1.0, 1.0), "i8dot": (float(INT8_PATTERN), 0.0),
+            "i16dot": (float(INT16_PATTERN), 0.0)}
+
+
+@dataclass(frozen=True)
+class PeakKernel:
+    """One multiply-add peak kernel: what it computes, on which hosts, and how it is labelled."""
+
+    name: str
+    dtype: str  # the precision figure it stands for: fp64 fp32 fp16 bf16 int8 int16
+    spec_index: int
+    requires: tuple[str, ...]  # ISA features (host.features names), all needed
+    arch: str | None  # "x86_64" / "aarch64" / None: any
+    variant: str  # the path label shown with the figure
+    native: bool  # True only when the dtype's own arithmetic runs in hardware
+    math_bits: int  # bits of one multiply-add lane of the arithmetic actually done
+
+    @property
+    def spec(self) -> BlockSpec:
+        return SPECS[self.spec_index]
+
+    @property
+    def macs_per_rep(self) -> int:
+        """Multiply-adds per thread per repetition."""
+        return self.spec.macs_per_block
+
+    @property
+    def ops_per_rep(self) -> int:
+        """1 multiply-add = 2 operations (common practice)."""
+        return 2 * self.macs_per_rep
+
+    def run(self, reps: int, nthreads: int) -> int:
+        m, c = OPERANDS[self.spec.kind]
+        return int(_entry(self.spec_index)(self.spec_index, reps, nthreads, m, c))
+
+    def verify(self, checksum: int, reps: int, nthreads: int) -> bool:
+        return checksum == peak_expected(self.spec, reps, nthreads)
+
+    def available(self, features, arch: str) -> bool:
+        return (self.arch is None or self.arch == arch) and all(f in features for f in self.requires)
+
+
+def _fp(dtype, elem, bits, accs, requires, arch, label, native=True, math_bits=None):
+    idx = _spec("fma", elem, bits, accs)
+    return PeakKernel(f"{dtype}-fma-{bits}x{accs}", dtype, idx, requires, arch, label, native,
+                      math_bits or {"f64": 64, "f32": 32, "f16": 16}[elem])
+
+
+def _fallback(k: PeakKernel, dtype: str) -> PeakKernel:
+    """The fp32 kernel standing for a half-precision dtype the host cannot compute natively."""
+    return PeakKernel(f"{dtype}-as-fp32-{k.spec.bits}x{k.spec.accumulators}", dtype, k.spec_index, k.requires, k.arch,
+                      f"{dtype} storage, fp32 math ({k.variant}); not native", False, 32)
+
+
+def _dot(dtype, bits, accs, requires, how):
+    """Integer dot-product kernel: VNNI target intrinsic where `how` names one, else portable IR."""
+    kind, sizes, mnemonic = (("i8dot", "u8 x s8", "vpdpbusd") if dtype == "int8" else ("i16dot", "s16 x s16", "vpdpwssd"))
+    if how == "vnni":
+        idx = _spec(kind, "i32", bits, accs, f"llvm.x86.avx512.{mnemonic}.{bits}")
+        reg = {512: "zmm", 256: "ymm"}[bits]
+        return PeakKernel(f"{dtype}-vnni-{bits}", dtype, idx, requires, "x86_64", f"{sizes} -> s32 ({mnemonic} {reg})",
+                          True, 8 if dtype == "int8" else 16)
+    return PeakKernel(f"{dtype}-ir-{bits}", dtype, _spec(kind, "i32", bits, accs), requires, None,
+                      f"{sizes} -> s32, portable vector IR as compiled", False, 8 if dtype == "int8" else 16)
+
+
+# width, accumulators, features needed, path
+_DOTS = ((512, 16, ("avx512_vnni",), "vnni"), (256, 12, ("avx_vnni",), "vnni"), (128, 12, (), "ir"))
+_X86 = "x86_64"
+_AVX512 = ("avx512f",)
+_F64 = [_fp("fp64", "f64", 512, 16, _AVX512, _X86, "llvm fma <8 x double>"),
+        _fp("fp64", "f64", 256, 16, ("avx512f", "avx512vl"), _X86, "llvm fma <4 x double>"),
+        _fp("fp64", "f64", 256, 12, ("avx2", "fma"), _X86, "llvm fma <4 x double>"),
+        _fp("fp64", "f64", 128, 16, (), None, "llvm fma <2 x double>")]
+_F32 = [_fp("fp32", "f32", 512, 16, _AVX512, _X86, "llvm fma <16 x float>"),
+        _fp("fp32", "f32", 256, 16, ("avx512f", "avx512vl"), _X86, "llvm fma <8 x float>"),
+        _fp("fp32", "f32", 256, 12, ("avx2", "fma"), _X86, "llvm fma <8 x float>"),
+        _fp("fp32", "f32", 128, 16, (), None, "llvm fma <4 x float>")]
+
+REGISTRY: list[PeakKernel] = [
+    *_F64,
+    *_F32,
+    _fp("fp16", "f16", 512, 16, ("avx512_fp16",), _X86, "llvm fma <32 x half> (AVX-512 FP16)"),
+    _fp("fp16", "f16", 256, 16, ("avx512_fp16", "avx512vl"), _X86, "llvm fma <16 x half> (AVX-512 FP16)"),
+    _fp("fp16", "f16", 128, 16, ("asimdhp",), "aarch64", "llvm fma <8 x half> (Armv8.2 FP16)"),
+    *[_fallback(k, "fp16") for k in _F32],
+    PeakKernel("bf16-dot-512", "bf16", _spec("bf16dot", "f32", 512, 16, "llvm.x86.avx512bf16.dpbf16ps.512"),
+               ("avx512_bf16",), _X86, "bf16 pairs into fp32 (vdpbf16ps)", True, 16),
+    *[_fallback(k, "bf16") for k in _F32],
+    *[_dot(d, bits, accs, req, label) for d in ("int8", "int16") for bits, accs, req, label in _DOTS],
+]
+DTYPES = ("fp64", "fp32", "fp16", "bf16", "int8", "int16")
+
+
+def kernels_for(features, arch: str, dtype: str | None = None) -> list[PeakKernel]:
+    """Registry entries this host can run (optionally of one dtype), native ones first."""
+    ks = [k for k in REGISTRY if k.available(features, arch) and (dtype is None or k.dtype == dtype)]
+    return sorted(ks, key=lambda k: not k.native)
+
+
+# ---------------------------------------------------------------- what the compiler emits
+
+_MADD = re.compile(r"^\s*(?:\{vex\}\s*)?(v?f(?:n)?m(?:add|la)\w*|vpdp\w+|vdpbf16ps|vpmadd\w+|pmadd\w+|[su]dot|[su]mlal2?|"
+                   r"mla|bfdot|bfmmla|fmla)\s+([^\n]*)", re.M)
+
+
+def _width(operands: str) -> str:
+    m = re.search(r"%?([xyz])mm\d+", operands)
+    if m:
+        return {"x": "xmm/128", "y": "ymm/256", "z": "zmm/512"}[m.group(1)]
+    m = re.search(r"\bv\d+\.(\d+)([bhsd])", operands)
+    return f"{m.group(1)}{m.group(2)}/128" if m else "scalar"
+
+
+@functools.lru_cache(maxsize=None)
+def block_instructions(spec: BlockSpec) -> tuple[str, ...]:
+    """Multiply-add mnemonics and register widths LLVM emits for the block on this host ('vfmadd213pd zmm/512')."""
+    import llvmlite.binding as ll
+
+    ll.initialize_native_target()
+    ll.initialize_native_asmprinter()
+    module = ir.Module("probe")
+    module.triple = ll.get_process_triple()
+    fn = ir.Function(module, ir.FunctionType(I64, [ir.DoubleType()] * 3), "probe")
+    builder = ir.IRBuilder(fn.append_basic_block("entry"))
+    builder.ret(emit_block(builder, spec, *fn.args))
+    tm = ll.Target.from_default_triple().create_target_machine(
+        cpu=ll.get_host_cpu_name(), features=ll.get_host_cpu_features().flatten(), opt=3)
+    parsed = ll.parse_assembly(str(module))
+    asm = tm.emit_assembly(parsed)
+    return tuple(sorted({f"{m.group(1)} {_width(m.group(2))}" for m in _MADD.finditer(asm)}))
+
