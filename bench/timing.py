@@ -89,7 +89,8 @@ def calibrate(call: Callable[[int], Any], policy: TimingPolicy, start: int = 1) 
     """Smallest repetition count (roughly) whose call lasts at least `policy.min_seconds`."""
     reps = max(1, start)
     while True:
-        seconds, _ = _elapsed(call, reps)
+        # the faster of two calls: one call stalled by another process must not end calibration early
+        seconds = min(_elapsed(call, reps)[0], _elapsed(call, reps)[0])
         if seconds >= policy.min_seconds or reps >= policy.max_repetitions:
             return reps
         # aim 20% past the target; grow at most 100x per step so a noisy first call can't overshoot

@@ -1,1 +1,134 @@
-"""JIT-compiled microkernels and their registry."""
+"""The microkernel registry: each entry declares the bytes it moves and how its checksum is verified.
+
+Adding a memory kernel is one `MemoryKernel(...)` entry in `MEMORY_KERNELS`; the runner
+iterates the registry and the tests are parametrized over it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable, Optional
+
+import numpy as np
+
+from eaves.kernels import memory as mem
+from eaves.kernels import streaming as nt
+
+
+def thread_slices(n: int, nthreads: int) -> list[tuple[int, int]]:
+    """The (lo, hi) slice of every thread, exactly as the kernels compute it."""
+    line = mem.LINE_ELEMS
+    out = []
+    for t in range(nthreads):
+        lo = (t * n // nthreads) // line * line
+        hi = n if t == nthreads - 1 else ((t + 1) * n // nthreads) // line * line
+        out.append((lo, hi))
+    return out
+
+
+class Bound:
+    """A kernel bound to its buffers: `call(reps)` runs it, `expected(reps)` is its checksum."""
+
+    def __init__(self, call: Callable[[int], float], expected: Callable[[int], float],
+                 final_check: Optional[Callable[[], bool]] = None):
+        self._call, self._expected, self._final = call, expected, final_check
+        self.calls = 0
+
+    def __call__(self, reps: int) -> tuple[float, float]:
+        """Run `reps` repetitions; returns (checksum, expected checksum)."""
+        want = self._expected(reps)
+        got = self._call(reps)
+        self.calls += 1
+        return got, want
+
+    def final_check(self) -> bool:
+        """A full comparison of the buffers after the last call (outside any timing)."""
+        return True if self._final is None else bool(self._final())
+
+
+@dataclass(frozen=True)
+class MemoryKernel:
+    """A bandwidth kernel over one or two float64 arrays of `elems` elements each."""
+
+    name: str  # read | write | copy | axpy
+    variant: str  # how it loads or stores: load | store | nt-store | libc-memcpy
+    arrays: int  # arrays in the working set
+    read_bytes: int  # bytes read per element index (all arrays)
+    write_bytes: int  # bytes written per element index
+    in_sweep: bool  # measured at every working-set size, or only at the level ceilings
+    bind: Callable[[np.ndarray, np.ndarray, int, int], Bound]  # (a, b, elems, threads)
+    description: str
+
+    @property
+    def bytes_per_elem(self) -> int:
+        return self.read_bytes + self.write_bytes
+
+
+def _bind_read(a, b, n, threads):
+    x = a[:n]
+    x[:] = 1.0
+    return Bound(lambda r: mem.read_sum(x, r, threads), lambda r: float(r * n))
+
+
+def _bind_fill(kernel):
+    def bind(a, b, n, threads):
+        x = a[:n]
+        slices = thread_slices(n, threads)
+        last = [0]
+
+        def call(r):
+            last[0] = r
+            return kernel(x, r, threads, 1.0)
+
+        def expected(r):
+            return float(sum(2 * (1.0 + r - 1) for _ in slices))
+
+        return Bound(call, expected, lambda: bool(np.all(x == 1.0 + last[0] - 1)))
+    return bind
+
+
+def _bind_copy(kernel):
+    def bind(a, b, n, threads):
+        src, dst = a[:n], b[:n]
+        src[:] = np.arange(n, dtype=np.float64) % 4093.0
+        dst[:] = -1.0
+        want = float(sum(src[lo] + src[hi - 1] for lo, hi in thread_slices(n, threads)))
+        return Bound(lambda r: kernel(dst, src, r, threads), lambda r: want,
+                     lambda: bool(np.array_equal(dst, src)))
+    return bind
+
+
+def _bind_axpy(a, b, n, threads):
+    x, y = a[:n], b[:n]
+    x[:] = 1.0
+    y[:] = 0.0
+    done = [0]
+    firsts = len(thread_slices(n, threads))
+
+    def expected(r):
+        done[0] += r
+        return float(firsts * done[0])  # y == reps so far, read at each slice start
+
+    return Bound(lambda r: mem.axpy(y, x, 1.0, r, threads), expected,
+                 lambda: bool(np.all(y == float(done[0]))))
+
+
+MEMORY_KERNELS: tuple[MemoryKernel, ...] = (
+    MemoryKernel("read", "load", 1, 8, 0, True, _bind_read, "sum of every element"),
+    MemoryKernel("write", "store", 1, 0, 8, True, _bind_fill(mem.fill), "fill with ordinary stores"),
+    MemoryKernel("copy", "store", 2, 8, 8, True, _bind_copy(mem.copy), "b[i] = a[i] with ordinary stores"),
+    MemoryKernel("axpy", "store", 2, 16, 8, True, _bind_axpy, "y[i] = alpha * x[i] + y[i]"),
+    MemoryKernel("write", "nt-store", 1, 0, 8, False, _bind_fill(nt.fill_stream),
+                 "fill with streaming stores (no read for ownership)"),
+    MemoryKernel("copy", "nt-store", 2, 8, 8, False, _bind_copy(nt.copy_stream),
+                 "copy with streaming stores"),
+    MemoryKernel("copy", "libc-memcpy", 2, 8, 8, False, _bind_copy(nt.copy_memcpy),
+                 "copy by the C library's memcpy, called per thread slice"),
+)
+
+
+def memory_kernel(name: str, variant: str) -> MemoryKernel:
+    for k in MEMORY_KERNELS:
+        if k.name == name and k.variant == variant:
+            return k
+    raise KeyError(f"{name}/{variant}")

@@ -1,0 +1,34 @@
+"""Printing shared by the commands that show a run's ceilings (survey, show)."""
+
+from __future__ import annotations
+
+from typing import Sequence
+
+from rich.console import Console
+
+from eaves.ceilings import latency_ceilings, memory_ceilings, stride_penalty, stride_rows
+from eaves.records import Figure
+from eaves.tables import compute_table, memory_table, stride_table
+
+
+def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, title: str) -> None:
+    """Memory table, stride table and penalty, compute table: whichever the run has."""
+    if any(f.suite == "memory" for f in figures):
+        console.print(memory_table(memory_ceilings(figures), latency_ceilings(figures), levels,
+                                   f"Memory ceilings, {title}"))
+    if any(f.suite == "stride" for f in figures):
+        console.print(stride_table(stride_rows(figures), "Strided reads at DRAM size"))
+        for t in sorted({f.threads for f in figures if f.suite == "stride"}):
+            penalty = stride_penalty(figures, t)
+            if penalty:
+                console.print(f"stride penalty x{t}: one element per cache line keeps "
+                              f"{1 / penalty:.2f}x the useful bandwidth of sequential reads")
+    if any(f.suite in ("compute", "gemm") for f in figures):
+        from eaves.compute import compute_ceilings
+
+        rows = compute_ceilings(figures)
+        console.print(compute_table(rows, f"Compute ceilings, {title}"))
+        if any(r.dtype in ("fp16", "bf16") for r in rows) and not any(
+                r.native for r in rows if r.dtype in ("fp16", "bf16")):
+            console.print("no native fp16/bf16 arithmetic path on this host: those rows (†) are emulated "
+                          "and say how")

@@ -1,0 +1,28 @@
+"""`eaves hosts`: the host configurations in the store."""
+
+from __future__ import annotations
+
+import argparse
+
+from rich.console import Console
+from rich.table import Table
+
+from eaves.store import Store
+
+HELP = "list the hosts (hostname + hardware fingerprint) in the store"
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
+
+
+def run(args: argparse.Namespace) -> int:
+    store = Store(args.db)
+    table = Table(header_style="bold", box=None, pad_edge=False, title=f"Hosts in {store.shown_url}",
+                  title_justify="left")
+    for name in ("host key", "hostname", "runs", "last run (UTC)"):
+        table.add_column(name)
+    for key, hostname, runs, last in store.hosts():
+        table.add_row(key, hostname, str(runs), last.strftime("%Y-%m-%d %H:%M") if last else "-")
+    Console(highlight=False).print(table)
+    return 0

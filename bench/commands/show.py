@@ -1,0 +1,50 @@
+"""`eaves show RUN`: one stored run's ceilings, as tables or as the JSON document."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from rich.console import Console
+
+from eaves.commands._render import print_ceilings
+from eaves.document import run_document
+from eaves.store import Store
+
+HELP = "show a stored run (id, UUID or UUID prefix, or 'latest')"
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("run", help="run id, UUID, UUID prefix, or latest")
+    p.add_argument("--json", action="store_true", help="print the run's JSON document")
+    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
+
+
+def run(args: argparse.Namespace) -> int:
+    store = Store(args.db)
+    if args.run == "latest":
+        from eaves.errors import InputError
+
+        run_id = store.latest_complete_run()
+        if run_id is None:
+            raise InputError(f"no complete run in {store.shown_url}: run `eaves survey` first")
+    else:
+        run_id = store.resolve_run(args.run)
+    stored = store.load_run(run_id)
+    s = stored.summary
+    if args.json:
+        import json
+
+        meta = {"uuid": s.uuid, "host_key": s.host_key, "hostname": s.hostname, "kind": s.kind, "status": s.status,
+                "started_at": s.started_at, "ended_at": s.ended_at, "tag": s.tag, "note": s.note,
+                "git_describe": s.git_describe, "eaves_version": s.eaves_version, "params": stored.params}
+        doc = run_document(meta, stored.host_facts, stored.figures, stored.placements)
+        sys.stdout.write(json.dumps(doc, indent=2) + "\n")
+        return 0
+    console = Console(highlight=False)
+    console.print(f"run {s.id} {s.uuid} on {s.host_key}: {s.kind}, {s.status}, started {s.started_at:%Y-%m-%d %H:%M:%S} UTC"
+                  + (f", tag {s.tag}" if s.tag else "") + (f", git {s.git_describe}" if s.git_describe else ""))
+    if s.note:
+        console.print(f"note: {s.note}", markup=False)
+    print_ceilings(console, stored.figures, stored.params.get("levels", {}), s.uuid[:8])
+    return 0

@@ -1,0 +1,150 @@
+"""`eaves survey`: measure this host's memory and compute ceilings and log them as one run."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from rich.console import Console
+from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
+
+from eaves.budget import make_budget
+from eaves.charts import bandwidth_chart, scaling_chart
+from eaves.document import check_writable, run_document, write_document
+from eaves.errors import EXIT_INTERRUPTED, InputError
+from eaves.host import collect_host_facts
+from eaves.memory_survey import plan_memory
+from eaves.survey import SurveyOptions, reported_caches, run_survey
+from eaves.commands._render import print_ceilings
+from eaves.threads import check_thread_counts, default_thread_counts
+from eaves.units import format_bytes, parse_int_list, parse_size
+
+HELP = "measure this host's ceilings (memory bandwidth and latency per level, compute per dtype) and store them"
+PARTS = ("memory", "compute")
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--quick", action="store_true", help="fewer sizes and shorter samples (about a minute)")
+    p.add_argument("--threads", metavar="LIST", help="thread counts, e.g. 1,2,4 (default 1, 2, 4 ... all CPUs)")
+    p.add_argument("--max-memory", metavar="SIZE", help="memory cap, e.g. 4GiB (default a quarter of available)")
+    p.add_argument("--tag", help="a label such as nightly")
+    p.add_argument("--note", help="free text kept with the run")
+    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
+    p.add_argument("--json", metavar="PATH", help="also write the run as a JSON document ('-' for stdout)")
+    p.add_argument("--dtypes", metavar="LIST", help="compute dtypes, e.g. fp64,fp32,int8 (default all)")
+    p.add_argument("--only", metavar="PARTS", help="memory, compute or both (default both)")
+    p.add_argument("--charts", metavar="DIR", default="results", help="folder for the charts (default results)")
+    p.add_argument("--sweep-top", metavar="SIZE", help="largest working set (default 4x the last-level cache)")
+
+
+def _options(args: argparse.Namespace, host) -> SurveyOptions:
+    counts = check_thread_counts(parse_int_list(args.threads, "--threads")) if args.threads else \
+        default_thread_counts(host.usable_cpus)
+    budget = make_budget(args.max_memory, host.mem_available_bytes)
+    parts = tuple(parse_parts(args.only))
+    dtypes = None
+    if args.dtypes:
+        from eaves.compute import check_dtypes
+
+        dtypes = tuple(check_dtypes([d.strip() for d in args.dtypes.split(",") if d.strip()]))
+    llc = host.last_level_cache()
+    top = parse_size(args.sweep_top, "--sweep-top") if args.sweep_top else None
+    plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, top_bytes=top)
+    return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts)
+
+
+def parse_parts(text) -> list[str]:
+    if not text:
+        return list(PARTS)
+    parts = [p.strip() for p in text.split(",") if p.strip()]
+    for p in parts:
+        if p not in PARTS:
+            raise InputError(f"--only: unknown part {p!r} (use memory, compute or memory,compute)")
+    return parts
+
+
+def _check_charts_dir(folder: str) -> Path:
+    path = Path(folder)
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise InputError(f"--charts {folder}: cannot create the folder: {err.strerror}") from err
+    import os
+
+    if not os.access(path, os.W_OK):
+        raise InputError(f"--charts {folder}: folder is not writable")
+    return path
+
+
+def cautions(host, options: SurveyOptions) -> list[str]:
+    lines = [
+        f"eaves survey loads every core and the memory system while it runs: do not run it on a production "
+        f"host serving traffic. Memory use is capped at {format_bytes(options.budget.cap_bytes)} (--max-memory).",
+        "Sustained figures fall when the host throttles for heat or power; shared and virtual machines are noisy.",
+    ]
+    if host.virtual:
+        lines.append(f"This host is a virtual machine ({host.hypervisor or 'hypervisor unknown'}): "
+                     "other tenants can move every figure.")
+    if host.load_average and host.load_average[0] > 0.25 * host.logical_cpus:
+        lines.append(f"Load average is {host.load_average[0]:.2f} on {host.logical_cpus} CPUs: "
+                     "another program is busy, expect lower and noisier figures.")
+    return lines
+
+
+def run(args: argparse.Namespace) -> int:
+    host = collect_host_facts()
+    options = _options(args, host)
+    check_writable(args.json, "--json")
+    charts_dir = _check_charts_dir(args.charts)
+    from eaves.store import Store, default_url
+
+    Store(args.db or default_url()).close()  # a bad store fails now, not after the measurements
+    to_stdout = args.json == "-"
+    console = Console(stderr=to_stdout, highlight=False)
+    for line in cautions(host, options):
+        console.print(f"[yellow]![/] {line}")
+    with Progress(SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn(),
+                  console=console, transient=True) as bar:
+        task = bar.add_task("starting")
+        outcome = run_survey(host, options, lambda msg: bar.update(task, description=msg))
+    record = outcome.record
+    from eaves.transfer import save_or_spool
+
+    saved = save_or_spool(record, args.db)
+    console.print(("[yellow]" if saved.spooled else "[green]") + saved.message)
+    figures = record.figures
+    levels = record.params.get("levels", {})
+    title = f"{host.host_key()}  run {record.uuid[:8]}  ({record.status})"
+    caps, _ = reported_caches(host)
+    stem = charts_dir / f"{host.hostname}-{record.uuid[:8]}"
+    print_ceilings(console, figures, levels, title)
+    if any(f.suite == "sweep" for f in figures):
+        paths = bandwidth_chart(figures, levels, caps, stem.with_name(stem.name + "-bandwidth"),
+                                f"{host.hostname}: bandwidth by working set")
+        more = scaling_chart(figures, stem.with_name(stem.name + "-scaling"), f"{host.hostname}: thread scaling")
+        console.print("charts: " + ", ".join(str(p) for p in paths + (more or [])))
+    if any(f.suite in ("compute", "gemm") for f in figures):
+        from eaves.compute import compute_ceilings, plot_compute
+
+        png = stem.with_name(stem.name + "-compute.png")
+        plot_compute(compute_ceilings(figures), str(png), str(png.with_suffix(".svg")))
+        console.print(f"chart: {png}")
+    for note in outcome.notes:
+        console.print(f"[yellow]note:[/] {note}")
+    if args.json:
+        doc = run_document(_run_meta(record, saved), record.host_facts, figures)
+        text = write_document(doc, args.json)
+        if text is not None:
+            sys.stdout.write(text + "\n")
+    if outcome.interrupted_by:
+        console.print(f"[red]interrupted by {outcome.interrupted_by}: stored as an interrupted run")
+        return EXIT_INTERRUPTED
+    return 0
+
+
+def _run_meta(record, saved) -> dict:
+    return {"uuid": record.uuid, "host_key": record.host_key, "hostname": record.hostname, "kind": record.kind,
+            "status": record.status, "started_at": record.started_at, "ended_at": record.ended_at,
+            "tag": record.tag, "note": record.note, "git_describe": record.git_describe,
+            "eaves_version": record.eaves_version, "params": record.params, "stored_in": saved.where}

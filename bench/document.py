@@ -1,0 +1,109 @@
+"""The versioned JSON document of a run: host facts and every ceiling, units in the keys."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import json
+import math
+from pathlib import Path
+from typing import Any, Optional, Sequence
+
+from eaves.ceilings import latency_ceilings, memory_ceilings, stride_rows
+from eaves.errors import InputError
+from eaves.records import Figure, PlacedLayer
+
+DOCUMENT_SCHEMA = "eaves.run"
+DOCUMENT_VERSION = 1
+
+
+def _clean(value: Any) -> Any:
+    """JSON has no NaN or infinity: they become null."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    if isinstance(value, (dt.datetime, dt.date)):
+        return value.isoformat()
+    return value
+
+
+def figure_dict(f: Figure) -> dict[str, Any]:
+    d = {"suite": f.suite, "kernel": f.kernel, "variant": f.variant, "dtype": f.dtype, "threads": f.threads,
+         "working_set_bytes": f.working_set_bytes, "cache_level": f.cache_level,
+         "stride_elems": f.stride_elems, "shape": f.shape, f"median_{f.unit}": f.median,
+         f"best_{f.unit}": f.best, f"samples_{f.unit}": list(f.samples), "repetitions": f.repetitions,
+         "min_seconds_per_sample": f.min_seconds, "extra": f.extra}
+    return d
+
+
+def run_document(run: dict[str, Any], host: dict[str, Any], figures: Sequence[Figure],
+                 placements: Sequence[PlacedLayer] = ()) -> dict[str, Any]:
+    """Everything a reader needs about one run; `run` holds uuid, host_key, times, status, tag ..."""
+    doc: dict[str, Any] = {
+        "schema": DOCUMENT_SCHEMA,
+        "schema_version": DOCUMENT_VERSION,
+        "run": run,
+        "host": host,
+        "ceilings": {
+            "memory": [{"level": c.level, "kernel": c.kernel, "threads": c.threads, "bytes_per_s": c.bytes_per_s,
+                        "variant": c.variant, "working_set_bytes": c.working_set_bytes, "cv": c.cv}
+                       for c in memory_ceilings(figures)],
+            "latency": [{"level": c.level, "ns_per_load": c.ns_per_load, "working_set_bytes": c.working_set_bytes}
+                        for c in latency_ceilings(figures)],
+            "stride": [{"stride_bytes": r.stride_bytes, "threads": r.threads,
+                        "useful_bytes_per_s": r.useful_bytes_per_s, "line_bytes_per_s": r.line_bytes_per_s,
+                        "vs_sequential": r.vs_sequential} for r in stride_rows(figures)],
+            "compute": _compute_rows(figures),
+        },
+        "figures": [figure_dict(f) for f in figures],
+    }
+    if placements:
+        doc["layers"] = [dataclasses.asdict(p) for p in placements]
+    return _clean(doc)
+
+
+def _compute_rows(figures: Sequence[Figure]) -> list[dict[str, Any]]:
+    if not any(f.suite in ("compute", "gemm") for f in figures):
+        return []
+    from eaves.compute import compute_ceilings
+
+    rows = []
+    for c in compute_ceilings(figures):
+        unit = "ops_per_s" if c.dtype.startswith("int") else "flops_per_s"
+        rows.append({"dtype": c.dtype, "threads": c.threads, f"peak_{unit}": c.peak_ops_per_s,
+                     "peak_path": c.peak_variant, "native": c.native, f"gemm_{unit}": c.gemm_ops_per_s,
+                     "gemm_shape": c.gemm_shape, f"theoretical_{unit}": c.theoretical_ops_per_s,
+                     "percent_of_theoretical": c.pct_of_theoretical,
+                     "peak_macs_per_s": c.peak_macs_per_s})
+    return rows
+
+
+def write_document(doc: dict[str, Any], path: str) -> Optional[str]:
+    """Write to a file, or return the text when `path` is '-' (the caller prints it)."""
+    text = json.dumps(doc, indent=2, sort_keys=False)
+    if path == "-":
+        return text
+    target = Path(path)
+    try:
+        tmp = target.with_name(target.name + ".part")
+        tmp.write_text(text + "\n")
+        tmp.replace(target)
+    except OSError as err:
+        raise InputError(f"--json {path}: cannot write: {err.strerror}") from err
+    return None
+
+
+def check_writable(path: Optional[str], option: str) -> None:
+    """Refuse an output path whose folder is missing or read-only, before any measurement."""
+    import os
+
+    if not path or path == "-":
+        return
+    folder = Path(path).resolve().parent
+    if not folder.is_dir():
+        raise InputError(f"{option} {path}: folder {folder} does not exist")
+    if not os.access(folder, os.W_OK):
+        raise InputError(f"{option} {path}: folder {folder} is not writable")

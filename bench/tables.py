@@ -1,0 +1,90 @@
+"""Tables for the terminal (rich renderables); built from ceiling rows, printed only by commands."""
+
+from __future__ import annotations
+
+from typing import Optional, Sequence
+
+from rich.table import Table
+
+from eaves.ceilings import KERNELS, LatencyCeiling, MemoryCeiling, StrideRow, level_key
+from eaves.records import RunSummary
+from eaves.units import format_bytes, format_rate
+
+VARIANT_MARKS = {"nt-store": "ˢ", "libc-memcpy": "ᵐ"}
+
+
+def memory_table(ceilings: Sequence[MemoryCeiling], latency: Sequence[LatencyCeiling],
+                 plateaus: dict, title: str) -> Table:
+    """One row per level and thread count: bandwidth per kernel, the level's size and its latency."""
+    table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False,
+                  caption="ˢ streaming stores   ᵐ C library memcpy   size: detected / OS-reported",
+                  caption_justify="left")
+    table.add_column("level")
+    table.add_column("size", justify="right")
+    table.add_column("thr", justify="right")
+    for k in KERNELS:
+        table.add_column(k, justify="right")
+    table.add_column("latency", justify="right")
+    lat = {c.level: c.ns_per_load for c in latency}
+    levels = sorted({c.level for c in ceilings}, key=level_key)
+    threads = sorted({c.threads for c in ceilings})
+    by = {(c.level, c.kernel, c.threads): c for c in ceilings}
+    for level in levels:
+        for i, t in enumerate(threads):
+            cells = []
+            for k in KERNELS:
+                c = by.get((level, k, t))
+                cells.append("-" if c is None else format_rate(c.bytes_per_s, "B/s") + VARIANT_MARKS.get(c.variant, ""))
+            size = _size_cell(level, plateaus.get(str(t)) or plateaus.get(t) or [])
+            latency = f"{lat[level]:.1f} ns" if (i == 0 and level in lat) else ""
+            table.add_row(level if i == 0 else "", size, str(t), *cells, latency,
+                          end_section=i == len(threads) - 1)
+    return table
+
+
+def _size_cell(level: str, plateaus: list) -> str:
+    for p in plateaus:
+        if p["name"] == level:
+            detected = format_bytes(p["edge_bytes"]) if p.get("edge_bytes") else f">{format_bytes(p['first_bytes'])}"
+            reported = format_bytes(p["reported_bytes"]) if p.get("reported_bytes") else "-"
+            return f"{detected} / {reported}"
+    return "-"
+
+
+def stride_table(rows: Sequence[StrideRow], title: str) -> Table:
+    table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False)
+    for name in ("stride", "thr", "useful", "cache lines moved", "useful vs stride 8 B"):
+        table.add_column(name, justify="right")
+    for r in rows:
+        table.add_row(format_bytes(r.stride_bytes), str(r.threads), format_rate(r.useful_bytes_per_s, "B/s"),
+                      format_rate(r.line_bytes_per_s, "B/s"), f"{r.vs_sequential:.2f}x")
+    return table
+
+
+def compute_table(rows: Sequence, title: str) -> Table:
+    """Per dtype and thread count: peak, achievable GEMM, theoretical bound and the share of it."""
+    table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False,
+                  caption="int rows in OP/s with MAC/s beside (1 MAC = 2 OP); † not a native path on this host",
+                  caption_justify="left")
+    for name in ("dtype", "thr", "peak", "MAC/s", "GEMM", "GEMM shape", "theoretical", "% of theor.", "path"):
+        table.add_column(name, justify="left" if name in ("dtype", "path", "GEMM shape") else "right")
+    for c in rows:
+        unit = "OP/s" if c.dtype.startswith("int") else "FLOP/s"
+        table.add_row(c.dtype + ("" if c.native else " †"), str(c.threads), format_rate(c.peak_ops_per_s, unit),
+                      format_rate(c.peak_macs_per_s, "MAC/s") if c.dtype.startswith("int") else "",
+                      format_rate(c.gemm_ops_per_s, unit), c.gemm_shape or "-",
+                      format_rate(c.theoretical_ops_per_s, unit),
+                      "-" if c.pct_of_theoretical is None else f"{c.pct_of_theoretical:.0f}%",
+                      c.peak_variant or "-")
+    return table
+
+
+def runs_table(runs: Sequence[RunSummary], title: Optional[str] = None) -> Table:
+    table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False)
+    for name in ("id", "uuid", "host", "kind", "status", "started (UTC)", "secs", "tag", "figures", "layers", "git"):
+        table.add_column(name)
+    for r in runs:
+        secs = f"{(r.ended_at - r.started_at).total_seconds():.0f}" if r.ended_at else "-"
+        table.add_row(str(r.id), r.uuid[:8], r.host_key, r.kind, r.status, r.started_at.strftime("%Y-%m-%d %H:%M:%S"),
+                      secs, r.tag or "", str(r.n_figures), str(r.n_placements), r.git_describe or "")
+    return table

@@ -1,0 +1,128 @@
+"""Non-temporal (streaming) stores: numba has no API for them, so an intrinsic emits LLVM IR.
+
+A full cache line is written with one 64-byte vector store carrying LLVM's `nontemporal`
+metadata; x86 compiles it to movnt stores that bypass the read-for-ownership of the line.
+Destinations must be 64-byte aligned (see `aligned_empty`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from llvmlite import ir
+from numba import njit, prange, types
+from numba.extending import intrinsic
+
+from eaves.kernels.memory import FAST, LINE_ELEMS, _slice
+
+
+def aligned_empty(n: int, dtype=np.float64, align: int = 64) -> np.ndarray:
+    """An uninitialised 1-d array whose first element sits on an `align`-byte boundary."""
+    itemsize = np.dtype(dtype).itemsize
+    raw = np.empty(n * itemsize + align, dtype=np.uint8)
+    offset = (-raw.ctypes.data) % align
+    return raw[offset:offset + n * itemsize].view(dtype)
+
+
+def _line_ptr(builder, context, arrtype, arr, index):
+    ary = context.make_array(arrtype)(context, builder, arr)
+    ptr = builder.gep(ary.data, [index])
+    return builder.bitcast(ptr, ir.VectorType(ir.DoubleType(), LINE_ELEMS).as_pointer())
+
+
+def _nontemporal(builder, value, ptr):
+    store = builder.store(value, ptr, align=64)
+    store.set_metadata("nontemporal", builder.module.add_metadata([ir.IntType(32)(1)]))
+
+
+@intrinsic
+def stream_line_copy(typingctx, dst, src, i):
+    """dst[i:i+8] = src[i:i+8] with a streaming store (i a multiple of 8)."""
+    def codegen(context, builder, sig, args):
+        value = builder.load(_line_ptr(builder, context, sig.args[1], args[1], args[2]), align=8)
+        _nontemporal(builder, value, _line_ptr(builder, context, sig.args[0], args[0], args[2]))
+        return context.get_dummy_value()
+    return types.void(dst, src, types.intp), codegen
+
+
+@intrinsic
+def stream_line_fill(typingctx, dst, i, value):
+    """dst[i:i+8] = value with a streaming store (i a multiple of 8)."""
+    def codegen(context, builder, sig, args):
+        vec_t = ir.VectorType(ir.DoubleType(), LINE_ELEMS)
+        vec = ir.Constant(vec_t, ir.Undefined)
+        for lane in range(LINE_ELEMS):
+            vec = builder.insert_element(vec, args[2], ir.IntType(32)(lane))
+        _nontemporal(builder, vec, _line_ptr(builder, context, sig.args[0], args[0], args[1]))
+        return context.get_dummy_value()
+    return types.void(dst, types.intp, types.float64), codegen
+
+
+@intrinsic
+def store_fence(typingctx):
+    """Order streaming stores before what follows (x86 sfence)."""
+    def codegen(context, builder, sig, args):
+        builder.fence("seq_cst")
+        return context.get_dummy_value()
+    return types.void(), codegen
+
+
+@njit(parallel=True, fastmath=FAST, cache=True)
+def fill_stream(a, reps, nthreads, base):
+    """`fill` with streaming stores; whole lines only (len(a) a multiple of 8 per thread)."""
+    partial = np.zeros(nthreads)
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, a.shape[0])
+        x = a[lo:hi]
+        lines = x.shape[0] // LINE_ELEMS
+        for r in range(reps):
+            v = base + r
+            for k in range(lines):
+                stream_line_fill(x, k * LINE_ELEMS, v)
+        store_fence()
+        partial[t] = x[0] + x[lines * LINE_ELEMS - 1]
+    return partial.sum()
+
+
+@njit(parallel=True, fastmath=FAST, cache=True)
+def copy_stream(dst, src, reps, nthreads):
+    """`copy` with streaming stores; whole lines only."""
+    partial = np.zeros(nthreads)
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, src.shape[0])
+        d = dst[lo:hi]
+        s = src[lo:hi]
+        lines = s.shape[0] // LINE_ELEMS
+        for _ in range(reps):
+            for k in range(lines):
+                stream_line_copy(d, s, k * LINE_ELEMS)
+        store_fence()
+        partial[t] = d[0] + d[lines * LINE_ELEMS - 1]
+    return partial.sum()
+
+
+def _libc_memcpy():
+    import ctypes
+    import ctypes.util
+
+    libc = ctypes.CDLL(ctypes.util.find_library("c") or None)
+    fn = libc.memcpy
+    fn.argtypes = [ctypes.c_void_p, ctypes.c_void_p, ctypes.c_size_t]
+    fn.restype = ctypes.c_void_p
+    return fn
+
+
+_memcpy = _libc_memcpy()
+
+
+@njit(parallel=True, cache=False)  # a ctypes function pointer cannot be cached across processes
+def copy_memcpy(dst, src, reps, nthreads):
+    """`copy` through the C library's memcpy, one call per thread slice and repetition."""
+    partial = np.zeros(nthreads)
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, src.shape[0])
+        d = dst[lo:hi]
+        s = src[lo:hi]
+        for _ in range(reps):
+            _memcpy(d.ctypes.data, s.ctypes.data, s.shape[0] * 8)
+        partial[t] = d[0] + d[-1]
+    return partial.sum()
