@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 
 import pytest
 from layer_fixtures import CACHES, HOST_KEY, KIB, save_survey, synthetic_figures, temp_store
@@ -119,9 +121,7 @@ def test_measured_throughput_is_batch_over_latency(model):
 
 
 @pytest.fixture
-def cli(monkeypatch):
-    # only this command's module: the other commands are tested (and may be written) elsewhere
-    monkeypatch.setattr(eaves.cli, "COMMANDS", ("place",))
+def cli():
     return eaves.cli.main
 
 
@@ -191,3 +191,15 @@ def test_place_builtin_times_stores_and_links_the_ceilings(tmp_path, cli, capsys
     assert all(p.bound in ("memory", "compute") and p.seconds > 0 for p in stored.placements)
     for p in stored.placements:  # stored figures agree with the counts
         assert p.flops_per_s == pytest.approx(p.flops / p.seconds)
+
+
+def test_place_end_to_end_in_a_subprocess(tmp_path):
+    store = temp_store(tmp_path)
+    uuid = save_survey(store, synthetic_figures())
+    done = subprocess.run([sys.executable, "-m", "eaves", "place", str(_layer_file(tmp_path)), "--db", store.url,
+                           "--run", uuid, "--json", "-"], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    assert {l["bound"] for l in json.loads(done.stdout)["layers"]} <= {"memory", "compute"}
+    bad = subprocess.run([sys.executable, "-m", "eaves", "place", str(tmp_path / "absent.csv"), "--db", store.url],
+                         capture_output=True, text=True, timeout=120)
+    assert bad.returncode == 2 and bad.stderr.strip() == f"eaves: error: {tmp_path / 'absent.csv'}: no such file"
