@@ -14,7 +14,6 @@ from eaves.host import HostFacts
 from eaves.levels import CacheCapacity, Plateau
 from eaves.memory_survey import MemoryPlan, measure_memory
 from eaves.records import Figure, RunRecord
-from eaves.timing import TimingPolicy
 
 Progress = Callable[[str], None]
 # No core moves more than four full vector registers of data per cycle between its caches and
@@ -110,7 +109,7 @@ def run_survey(host: HostFacts, options: SurveyOptions, progress: Progress = lam
         if "compute" in options.parts:
             from eaves.compute import measure_compute
 
-            policy = TimingPolicy.quick() if options.quick else TimingPolicy.full()
+            policy = options.memory_plan.policy
             record.figures += measure_compute(host, list(options.thread_counts), policy, options.dtypes,
                                               options.budget.cap_bytes, progress,
                                               mode="quick" if options.quick else "full")

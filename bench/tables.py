@@ -10,14 +10,15 @@ from eaves.ceilings import KERNELS, LatencyCeiling, MemoryCeiling, StrideRow, le
 from eaves.records import RunSummary
 from eaves.units import format_bytes, format_rate
 
-VARIANT_MARKS = {"nt-store": "ˢ", "libc-memcpy": "ᵐ"}
+VARIANT_MARKS = {"streaming store": "ˢ", "libc memcpy": "ᵐ", "compiled loop": "ᶜ"}
 
 
 def memory_table(ceilings: Sequence[MemoryCeiling], latency: Sequence[LatencyCeiling],
                  plateaus: dict, title: str) -> Table:
     """One row per level and thread count: bandwidth per kernel, the level's size and its latency."""
     table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False,
-                  caption="ˢ streaming stores   ᵐ C library memcpy   size: detected / OS-reported",
+                  caption="ˢ streaming stores  ᵐ C library memcpy  ᶜ compiler-vectorised loop  (else explicit full-width "
+                  "vectors)   size: detected / OS-reported",
                   caption_justify="left")
     table.add_column("level")
     table.add_column("size", justify="right")

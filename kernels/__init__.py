@@ -13,6 +13,7 @@ import numpy as np
 
 from eaves.kernels import memory as mem
 from eaves.kernels import streaming as nt
+from eaves.kernels import vector as vec
 
 
 def thread_slices(n: int, nthreads: int) -> list[tuple[int, int]]:
@@ -51,7 +52,7 @@ class MemoryKernel:
     """A bandwidth kernel over one or two float64 arrays of `elems` elements each."""
 
     name: str  # read | write | copy | axpy
-    variant: str  # how it loads or stores: load | store | nt-store | libc-memcpy
+    variant: str  # how it loads or stores: vector N-bit | compiled loop | streaming store | libc memcpy
     arrays: int  # arrays in the working set
     read_bytes: int  # bytes read per element index (all arrays)
     write_bytes: int  # bytes written per element index
@@ -64,10 +65,12 @@ class MemoryKernel:
         return self.read_bytes + self.write_bytes
 
 
-def _bind_read(a, b, n, threads):
-    x = a[:n]
-    x[:] = 1.0
-    return Bound(lambda r: mem.read_sum(x, r, threads), lambda r: float(r * n))
+def _bind_read(kernel):
+    def bind(a, b, n, threads):
+        x = a[:n]
+        x[:] = 1.0
+        return Bound(lambda r: kernel(x, r, threads), lambda r: float(r * n))
+    return bind
 
 
 def _bind_fill(kernel):
@@ -98,31 +101,40 @@ def _bind_copy(kernel):
     return bind
 
 
-def _bind_axpy(a, b, n, threads):
-    x, y = a[:n], b[:n]
-    x[:] = 1.0
-    y[:] = 0.0
-    done = [0]
-    firsts = len(thread_slices(n, threads))
+def _bind_axpy(kernel):
+    def bind(a, b, n, threads):
+        x, y = a[:n], b[:n]
+        x[:] = 1.0
+        y[:] = 0.0
+        done = [0]
+        firsts = len(thread_slices(n, threads))
 
-    def expected(r):
-        done[0] += r
-        return float(firsts * done[0])  # y == reps so far, read at each slice start
+        def expected(r):
+            done[0] += r
+            return float(firsts * done[0])  # y == repetitions so far, read at each slice start
 
-    return Bound(lambda r: mem.axpy(y, x, 1.0, r, threads), expected,
-                 lambda: bool(np.all(y == float(done[0]))))
+        return Bound(lambda r: kernel(y, x, 1.0, r, threads), expected,
+                     lambda: bool(np.all(y == float(done[0]))))
+    return bind
 
+
+WIDE = vec.WIDTH_LABEL  # explicit vectors at the host's full width
+COMPILED = "compiled loop"  # numba's loop as LLVM vectorises it (may prefer narrower vectors)
 
 MEMORY_KERNELS: tuple[MemoryKernel, ...] = (
-    MemoryKernel("read", "load", 1, 8, 0, True, _bind_read, "sum of every element"),
-    MemoryKernel("write", "store", 1, 0, 8, True, _bind_fill(mem.fill), "fill with ordinary stores"),
-    MemoryKernel("copy", "store", 2, 8, 8, True, _bind_copy(mem.copy), "b[i] = a[i] with ordinary stores"),
-    MemoryKernel("axpy", "store", 2, 16, 8, True, _bind_axpy, "y[i] = alpha * x[i] + y[i]"),
-    MemoryKernel("write", "nt-store", 1, 0, 8, False, _bind_fill(nt.fill_stream),
+    MemoryKernel("read", WIDE, 1, 8, 0, True, _bind_read(vec.read_sum), "sum of every element"),
+    MemoryKernel("write", WIDE, 1, 0, 8, True, _bind_fill(vec.fill), "fill with ordinary stores"),
+    MemoryKernel("copy", WIDE, 2, 8, 8, True, _bind_copy(vec.copy), "b[i] = a[i] with ordinary stores"),
+    MemoryKernel("axpy", WIDE, 2, 16, 8, True, _bind_axpy(vec.axpy), "y[i] = alpha * x[i] + y[i]"),
+    MemoryKernel("read", COMPILED, 1, 8, 0, False, _bind_read(mem.read_sum), "sum, as LLVM vectorises it"),
+    MemoryKernel("write", COMPILED, 1, 0, 8, False, _bind_fill(mem.fill), "fill, as LLVM vectorises it"),
+    MemoryKernel("copy", COMPILED, 2, 8, 8, False, _bind_copy(mem.copy), "copy, as LLVM vectorises it"),
+    MemoryKernel("axpy", COMPILED, 2, 16, 8, False, _bind_axpy(mem.axpy), "axpy, as LLVM vectorises it"),
+    MemoryKernel("write", "streaming store", 1, 0, 8, False, _bind_fill(nt.fill_stream),
                  "fill with streaming stores (no read for ownership)"),
-    MemoryKernel("copy", "nt-store", 2, 8, 8, False, _bind_copy(nt.copy_stream),
+    MemoryKernel("copy", "streaming store", 2, 8, 8, False, _bind_copy(nt.copy_stream),
                  "copy with streaming stores"),
-    MemoryKernel("copy", "libc-memcpy", 2, 8, 8, False, _bind_copy(nt.copy_memcpy),
+    MemoryKernel("copy", "libc memcpy", 2, 8, 8, False, _bind_copy(nt.copy_memcpy),
                  "copy by the C library's memcpy, called per thread slice"),
 )
 

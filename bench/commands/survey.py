@@ -17,6 +17,7 @@ from eaves.host import collect_host_facts
 from eaves.memory_survey import plan_memory
 from eaves.survey import SurveyOptions, reported_caches, run_survey
 from eaves.commands._render import print_ceilings
+from eaves.timing import TimingPolicy
 from eaves.threads import check_thread_counts, default_thread_counts
 from eaves.units import format_bytes, parse_int_list, parse_size
 
@@ -36,6 +37,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--only", metavar="PARTS", help="memory, compute or both (default both)")
     p.add_argument("--charts", metavar="DIR", default="results", help="folder for the charts (default results)")
     p.add_argument("--sweep-top", metavar="SIZE", help="largest working set (default 4x the last-level cache)")
+    p.add_argument("--samples", metavar="N", help="samples per figure (default 5 quick, 9 full)")
+    p.add_argument("--sample-seconds", metavar="S", help="minimum seconds per sample (default 0.01 quick, 0.05 full)")
 
 
 def _options(args: argparse.Namespace, host) -> SurveyOptions:
@@ -50,8 +53,26 @@ def _options(args: argparse.Namespace, host) -> SurveyOptions:
         dtypes = tuple(check_dtypes([d.strip() for d in args.dtypes.split(",") if d.strip()]))
     llc = host.last_level_cache()
     top = parse_size(args.sweep_top, "--sweep-top") if args.sweep_top else None
-    plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, top_bytes=top)
+    policy = _policy(args)
+    plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, policy=policy, top_bytes=top)
     return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts)
+
+
+def _policy(args: argparse.Namespace) -> TimingPolicy:
+    base = TimingPolicy.quick() if args.quick else TimingPolicy.full()
+    samples, seconds = base.samples, base.min_seconds
+    if args.samples:
+        samples = parse_int_list(args.samples, "--samples")[0]
+        if not 1 <= samples <= 1000:
+            raise InputError(f"--samples: {samples} is outside 1..1000")
+    if args.sample_seconds:
+        try:
+            seconds = float(args.sample_seconds)
+        except ValueError:
+            raise InputError(f"--sample-seconds: {args.sample_seconds!r} is not a number") from None
+        if not 0 < seconds <= 10:
+            raise InputError(f"--sample-seconds: {seconds} is outside (0, 10]")
+    return TimingPolicy(min_seconds=seconds, samples=samples)
 
 
 def parse_parts(text) -> list[str]:

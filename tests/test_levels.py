@@ -1,0 +1,39 @@
+"""Cache levels found in a bandwidth curve."""
+
+import math
+
+import pytest
+
+from eaves.levels import CacheCapacity, detect_plateaus, level_of, representative
+
+SIZES = [4096 * 2**i for i in range(20)]
+REPORTED = [CacheCapacity("L1", 48 * 1024), CacheCapacity("L2", 2 * 2**20), CacheCapacity("L3", 32 * 2**20)]
+
+
+def staircase(noise=0.03):
+    def bw(s):
+        return 170e9 if s <= 32 * 1024 else 90e9 if s <= 2 * 2**20 else 50e9 if s <= 16 * 2**20 else 18e9
+    return [bw(s) * (1 + noise * math.sin(3 * i)) for i, s in enumerate(SIZES)]
+
+
+def test_a_staircase_gives_one_plateau_per_level_named_after_the_os_sizes():
+    plateaus = detect_plateaus(SIZES, staircase(), REPORTED, dram_after=64 * 2**20)
+    assert [p.name for p in plateaus] == ["L1", "L2", "L3", "DRAM"]
+    assert plateaus[0].edge_bytes == 32 * 1024
+    assert plateaus[1].edge_bytes == 2 * 2**20
+    assert plateaus[-1].edge_bytes is None
+    assert plateaus[0].bytes_per_s == pytest.approx(170e9, rel=0.05)
+    assert level_of(8192, plateaus, SIZES) == "L1"
+    assert level_of(SIZES[-1], plateaus, SIZES) == "DRAM"
+    for p in plateaus:
+        assert p.first <= representative(p) <= p.last
+
+
+def test_a_flat_curve_is_one_level():
+    plateaus = detect_plateaus(SIZES, [20e9] * len(SIZES), REPORTED, dram_after=64 * 2**20)
+    assert len(plateaus) == 1 and plateaus[0].name == "DRAM"
+
+
+def test_without_os_sizes_levels_are_numbered():
+    plateaus = detect_plateaus(SIZES, staircase(), (), dram_after=None)
+    assert [p.name for p in plateaus] == ["L1", "L2", "L3", "DRAM"]
