@@ -323,9 +323,9 @@ def _insert_record(session: Session, record: RunRecord) -> bool:
 
 def _retryable(err: Exception) -> bool:
     """A write that lost a race and may succeed when repeated."""
-    if isinstance(err, IntegrityError):  # two writers added the same host (or run) at once
-        return True
     orig = getattr(err, "orig", None)
+    if isinstance(err, IntegrityError):  # two writers added the same host (or run) at once
+        return getattr(orig, "sqlstate", None) == "23505" or "UNIQUE constraint failed" in str(orig)
     if getattr(orig, "sqlstate", None) in _RETRY_SQLSTATES:
         return True
     message = str(orig).lower()

@@ -10,6 +10,7 @@ import sqlite3
 import subprocess
 import sys
 import textwrap
+import threading
 import time
 import uuid as uuidlib
 from pathlib import Path
@@ -18,7 +19,7 @@ import pytest
 from sqlalchemy import create_engine, text
 
 from eaves.errors import EXIT_STORE, StoreError
-from eaves.models import SCHEMA_REVISION
+from eaves.models import SCHEMA_REVISION, Host
 from eaves.store import Store, mask_url
 from run_records import figures, placement, record
 from store_backends import pg_base_url, run_cli, store_url  # noqa: F401  (fixtures)
@@ -111,7 +112,8 @@ WRITER = textwrap.dedent("""
     sys.stdin.readline()  # every writer opens the fresh store at once
     store = Store(url)
     for i in range(count):
-        rec = record(host=f"writer{{writer}}", minutes=i, with_figures=False)
+        # half the runs name one host that every writer adds at once: a race on its unique key
+        rec = record(host=f"writer{{writer}}" if i % 2 else "shared-rig", minutes=i, with_figures=False)
         rec.figures = record().figures[:2]
         print(store.save_run(rec), flush=True)
 """)
@@ -144,7 +146,44 @@ def test_eight_writers_lose_and_double_nothing(store_url, tmp_path):
     assert len(stored_uuids) == writers * runs_each  # none lost, none doubled
     assert sorted(stored_uuids) == sorted(reported) and len(set(stored_uuids)) == len(stored_uuids)
     assert {r.n_figures for r in stored} == {2}  # each run complete with its figures
-    assert sorted(h[2] for h in store.hosts()) == [runs_each] * writers
+    hosts = {h[1]: h[2] for h in store.hosts()}
+    assert hosts == {"shared-rig": writers * runs_each // 2,
+                     **{f"writer{w}": runs_each // 2 for w in range(writers)}}
+
+
+def test_a_writer_waits_for_another_ones_lock_instead_of_failing(tmp_path):
+    path = tmp_path / "store.db"
+    store = Store(f"sqlite:///{path}")
+    other = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+    other.execute("BEGIN IMMEDIATE")  # another host holds the write lock for a second
+    releaser = threading.Timer(1.0, lambda: other.execute("COMMIT"))
+    releaser.start()
+    t0 = time.monotonic()
+    uuid = store.save_run(record())
+    waited = time.monotonic() - t0
+    releaser.join()
+    other.close()
+    assert waited >= 0.9 and [r.uuid for r in store.runs()] == [uuid]
+
+
+def test_a_host_added_meanwhile_by_another_writer_is_reused(store_url):
+    store = Store(store_url)
+    rec = record("rack3-node09")
+    engine = create_engine(store_url)
+    with engine.connect() as other:  # another host's transaction adds the same host, not committed yet
+        other.begin()
+        other.execute(Host.__table__.insert().values(
+            host_key=rec.host_key, hostname=rec.hostname, fingerprint=rec.fingerprint, facts={},
+            first_seen=rec.started_at))
+        saved = []
+        writer = threading.Thread(target=lambda: saved.append(store.save_run(rec)))
+        writer.start()
+        time.sleep(0.5)  # our writer is now waiting on the lock (SQLite) or the unique key (PostgreSQL)
+        other.commit()
+        writer.join(30)
+    engine.dispose()
+    assert saved == [rec.uuid]  # PostgreSQL: the unique-key race was retried, not reported
+    assert [(h[0], h[2]) for h in store.hosts()] == [(rec.host_key, 1)]
 
 
 # -- bad input ---------------------------------------------------------------------------------
@@ -260,3 +299,20 @@ def test_fresh_store_records_the_current_schema_version(store_url, run_cli):
     code, out, _ = run_cli("db", "version", "--db", store_url)
     assert code == 0 and f"schema {SCHEMA_REVISION} (current" in out
     assert json.dumps(out)  # plain text, one line
+
+
+@pytest.mark.postgres
+def test_the_real_command_never_shows_the_password_of_eaves_db(tmp_path):
+    from sqlalchemy.engine import make_url
+
+    base = make_url(pg_base_url())
+    wrong = "NotTheP4ssword"
+    env = {**os.environ, "EAVES_DB": base.set(password=wrong).render_as_string(hide_password=False)}
+    proc = subprocess.run([sys.executable, "-m", "eaves", "db", "version"], env=env, cwd=tmp_path,
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == EXIT_STORE
+    assert proc.stderr.count("\n") == 1 and "Traceback" not in proc.stderr
+    assert "password authentication failed" in proc.stderr
+    for secret in (wrong, base.password):
+        assert secret not in proc.stdout + proc.stderr
+    assert list(tmp_path.iterdir()) == []  # nothing spooled or created locally

@@ -21,6 +21,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     spool = args.spool or default_spool()
+    if not spool.exists():
+        print(f"no spool at {spool}: nothing to push")
+        return 0
     result = push(args.db, spool)
     print(f"{spool} -> {mask_url(args.db or default_url())}: {result.copied} run(s) sent, "
           f"{result.already_there} already there, {result.removed_from_source} removed from the spool")
