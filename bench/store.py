@@ -300,6 +300,47 @@ class Store:
                              dict(run.facts), dict(run.host.facts), run.ceilings_run_uuid,
                              figures, placements)
 
+    # -- history (diff, trend, report) -----------------------------------------------------
+    def host_fingerprint(self, host_key: str) -> Optional[str]:
+        """The hardware fingerprint of a host key (None if the host is unknown)."""
+        with self._errors("cannot read"), Session(self.engine) as session:
+            return session.scalar(select(Host.fingerprint).where(Host.host_key == host_key))
+
+    def run_history(self, host: str, kind: str = "survey", since: Optional[dt.datetime] = None,
+                    last: Optional[int] = None) -> list[tuple[int, str, dt.datetime, Optional[str]]]:
+        """(id, uuid, started_at, tag) of a host's complete runs of one kind, oldest first;
+        `last`: only the newest that many. No figures and no counts: cheap on a long history."""
+        with self._errors("cannot read"), Session(self.engine) as session:
+            q = select(Run.id, Run.uuid, Run.started_at, Run.tag).join(Host).where(
+                Run.status == "complete", Run.kind == kind, (Host.host_key == host) | (Host.hostname == host))
+            if since is not None:
+                q = q.where(Run.started_at >= since)
+            q = q.order_by(Run.started_at.desc(), Run.id.desc())
+            if last:
+                q = q.limit(last)
+            rows = session.execute(q).all()
+        return [(r[0], r[1], _aware(r[2]), r[3]) for r in reversed(rows)]
+
+    def figures_of(self, run_ids: list[int], suites: Optional[tuple[str, ...]] = None) -> dict[int, list[Figure]]:
+        """Figures of many runs at once, by run id, optionally of some suites only (without `extra`)."""
+        cols = (Measurement.run_id, Measurement.suite, Measurement.kernel, Measurement.variant,
+                Measurement.dtype, Measurement.threads, Measurement.working_set_bytes, Measurement.cache_level,
+                Measurement.stride_elems, Measurement.shape, Measurement.samples, Measurement.repetitions,
+                Measurement.min_seconds, *(getattr(Measurement, u) for u in FIGURE_UNITS))
+        out: dict[int, list[Figure]] = {i: [] for i in run_ids}
+        with self._errors("cannot read"), Session(self.engine) as session:
+            for start in range(0, len(run_ids), 500):
+                q = select(*cols).where(Measurement.run_id.in_(run_ids[start:start + 500]))
+                if suites:
+                    q = q.where(Measurement.suite.in_(suites))
+                for r in session.execute(q.order_by(Measurement.id)):
+                    unit = next(u for u, v in zip(FIGURE_UNITS, r[13:]) if v is not None)
+                    out[r[0]].append(Figure(suite=r[1], kernel=r[2], variant=r[3], dtype=r[4], threads=r[5],
+                                            working_set_bytes=r[6], cache_level=r[7], stride_elems=r[8],
+                                            shape=r[9], unit=unit, samples=tuple(r[10]), repetitions=r[11],
+                                            min_seconds=r[12]))
+        return out
+
 
 def _insert_record(session: Session, record: RunRecord) -> bool:
     if session.scalar(select(Run.id).where(Run.uuid == record.uuid)) is not None:

@@ -1,0 +1,78 @@
+"""`eaves gate`: fail when a code change moved any layer away from its roof by more than allowed."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from eaves.errors import EXIT_WORSE
+from eaves.gate import DEFAULT_MAX_LOSS
+
+HELP = "fail (exit 1) when any layer lost more than --max-loss of its efficiency, beyond noise"
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--baseline", required=True, metavar="RUN_OR_FILE",
+                   help="placed layers before: a stored run (id, UUID or prefix) or a layer file (CSV or JSON)")
+    p.add_argument("--candidate", required=True, metavar="RUN_OR_FILE", help="placed layers after: same forms")
+    p.add_argument("--max-loss", metavar="PCT", default=str(DEFAULT_MAX_LOSS * 100),
+                   help=f"largest allowed loss of efficiency, in percent (default {DEFAULT_MAX_LOSS * 100:g})")
+    p.add_argument("--run", metavar="R", help="survey run whose roofs layer files are placed under "
+                   "(default: the newest complete survey of this host)")
+    p.add_argument("--json", action="store_true", help="print the verdicts as JSON")
+    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
+
+
+def run(args: argparse.Namespace) -> int:
+    from eaves.commands._verdicts import parse_percent
+    from eaves.gate import compare_layers, load_layer_set
+    from eaves.roofline import model_from_store
+    from eaves.store import Store
+
+    max_loss = parse_percent(args.max_loss, "--max-loss")
+    store = Store(args.db)
+    cache = {}
+
+    def model():
+        if "m" not in cache:
+            cache["m"] = model_from_store(store, args.run)
+        return cache["m"]
+
+    before = load_layer_set(store, args.baseline, model, "baseline")
+    after = load_layer_set(store, args.candidate, model, "candidate")
+    result = compare_layers(before.layers, after.layers, max_loss)
+    if args.json:
+        from eaves.commands._verdicts import comparison_dict
+
+        doc = {"baseline": before.source, "candidate": after.source, "max_loss_pct": max_loss * 100,
+               "layers": [{"layer": c.layer, "kind": c.kind, "dtype": c.dtype, "threads": c.threads,
+                           "counts_changed": c.counts_changed, "efficiency": comparison_dict(c.comparison)}
+                          for c in result.changes],
+               "new_layers": list(result.new), "vanished_layers": list(result.vanished),
+               "failed": [c.layer for c in result.worse]}
+        sys.stdout.write(json.dumps(doc, indent=2, allow_nan=False) + "\n")
+    else:
+        _print(before, after, result)
+    return EXIT_WORSE if result.worse else 0
+
+
+def _print(before, after, result) -> None:
+    from rich.console import Console
+    from rich.markup import escape
+
+    from eaves.commands.diff import _print_layers
+
+    console = Console(highlight=False)
+    if not console.is_terminal:
+        console = Console(width=max(console.width, 160), highlight=False)
+    console.print(f"baseline: {escape(before.source)}   candidate: {escape(after.source)}")
+    _print_layers(console, result, f"layers in both: efficiency against the roof "
+                                   f"(fail beyond {result.threshold:.0%} loss and beyond noise)")
+    if not result.changes:
+        console.print("[yellow]no layer is in both sets: nothing to gate[/]")
+    for c in result.worse:
+        console.print(f"[bold red]FAIL[/] {escape(c.layer)}: efficiency {c.before_efficiency:.1%} -> "
+                      f"{c.after_efficiency:.1%} ({c.comparison.change_pct:+.1f}%)")
+    if not result.worse:
+        console.print("[green]pass[/]: no layer moved away from its roof beyond the allowed loss")

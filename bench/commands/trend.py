@@ -1,0 +1,145 @@
+"""`eaves trend`: each ceiling of a host over time against its rolling baseline; drift flagged."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from eaves.compare import DEFAULT_THRESHOLD
+from eaves.errors import EXIT_WORSE, InputError
+from eaves.trend import DEFAULT_LAST, DEFAULT_WINDOW
+
+HELP = "history of a host's ceilings, each run against the median of the runs before it; drift flagged"
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--host", metavar="H", help="host key or hostname (default: this host)")
+    p.add_argument("--metric", metavar="M", action="append",
+                   help="only ceilings whose name matches (wildcards or a substring; repeatable), e.g. 'memory/read/DRAM*'")
+    p.add_argument("--since", metavar="DATE", help="only runs started on or after DATE (ISO, UTC)")
+    p.add_argument("--last", metavar="N", type=int, default=DEFAULT_LAST,
+                   help=f"without --since: the newest N runs (default {DEFAULT_LAST})")
+    p.add_argument("--window", metavar="K", type=int, default=DEFAULT_WINDOW,
+                   help=f"baseline: median of the K complete runs before each run (default {DEFAULT_WINDOW})")
+    p.add_argument("--threshold", metavar="PCT", default=str(DEFAULT_THRESHOLD * 100),
+                   help=f"smallest move that counts as drift, in percent (default {DEFAULT_THRESHOLD * 100:g})")
+    p.add_argument("--chart", metavar="DIR", help="draw one chart per ceiling over time into DIR (PNG and SVG)")
+    p.add_argument("--json", action="store_true", help="print the history as JSON")
+    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
+
+
+def default_host(store, host) -> str:
+    """The host asked for, else this host; an unknown host is an InputError listing the known ones."""
+    hosts = store.hosts()
+    if host is None:
+        from eaves.host import collect_host_facts
+
+        host = collect_host_facts().host_key()
+    if not any(host in (h[0], h[1]) for h in hosts):
+        known = ", ".join(h[0] for h in hosts[:8]) or "none"
+        raise InputError(f"--host {host}: no such host in {store.shown_url} (known: {known})")
+    return host
+
+
+def run(args: argparse.Namespace) -> int:
+    from eaves.commands._verdicts import parse_date, parse_percent
+    from eaves.store import Store
+    from eaves.trend import trend
+
+    threshold = parse_percent(args.threshold, "--threshold")
+    since = parse_date(args.since, "--since") if args.since else None
+    if args.last is not None and args.last < 1:
+        raise InputError(f"--last: {args.last} must be at least 1")
+    store = Store(args.db, create=False)
+    host = default_host(store, args.host)
+    result = trend(store, host, args.metric, since, args.window, threshold, args.last)
+    if args.metric and not result.metrics:
+        raise InputError(f"--metric: no ceiling of {host} matches {', '.join(args.metric)}")
+    written = []
+    if args.chart:
+        from eaves.trend_chart import save_trend_charts
+
+        written = save_trend_charts(result, args.chart)
+    if args.json:
+        sys.stdout.write(json.dumps(_document(result), indent=2, default=str, allow_nan=False) + "\n")
+    else:
+        _print(result, written)
+    drifted = [m for m in result.metrics if m.latest.drifted and m.latest.comparison.worse]
+    return EXIT_WORSE if drifted else 0
+
+
+def _document(t) -> dict:
+    from eaves.commands._verdicts import comparison_dict
+
+    return {"host": t.host, "window": t.window, "threshold_pct": t.threshold * 100,
+            "runs": [vars(r) for r in t.runs],
+            "ceilings": [{"name": m.key.name(), **vars(m.key), "unit": m.unit,
+                          "points": [{"run_id": p.run.id, "uuid": p.run.uuid, "started_at": p.run.started_at,
+                                      "tag": p.run.tag, "median": p.median, "q1": p.q1, "q3": p.q3,
+                                      "baseline": p.baseline, "drifted": p.drifted,
+                                      **({"comparison": comparison_dict(p.comparison)} if p.comparison else {})}
+                                     for p in m.points]} for m in t.metrics]}
+
+
+def _print(t, written) -> None:
+    from rich.console import Console
+    from rich.markup import escape
+    from rich.table import Table
+
+    from eaves.commands._verdicts import change_cell, format_value, verdict_cell
+
+    console = Console(highlight=False)
+    if not console.is_terminal:
+        console = Console(width=max(console.width, 160), highlight=False)
+    if not t.runs:
+        console.print(f"no complete survey runs of {escape(t.host)} in this period")
+        return
+    console.print(f"{escape(t.host)}: {len(t.runs)} complete survey runs, {t.runs[0].started_at:%Y-%m-%d} .. "
+                  f"{t.runs[-1].started_at:%Y-%m-%d}; baseline: median of the {t.window} runs before each")
+    table = Table(title="newest run against its baseline", title_justify="left", header_style="bold")
+    for col in ("ceiling", "runs", "first", "baseline", "newest", "change", "verdict", "drifts"):
+        table.add_column(col, justify="left" if col in ("ceiling", "verdict") else "right")
+    for m in t.metrics:
+        last = m.latest
+        drifts = sum(p.drifted for p in m.points)
+        c = last.comparison
+        table.add_row(escape(m.key.name()), str(len(m.points)), format_value(m.points[0].median, m.unit),
+                      format_value(last.baseline, m.unit), format_value(last.median, m.unit),
+                      change_cell(c) if c else "-", verdict_cell(c) if c else "no baseline", str(drifts))
+    console.print(table)
+    for m in t.metrics:
+        for p in m.points:
+            if p.drifted:
+                console.print(f"drift: {escape(m.key.name())} run {p.run.id} {p.run.uuid[:8]} "
+                              f"{p.run.started_at:%Y-%m-%d %H:%M}: {format_value(p.baseline, m.unit)} -> "
+                              f"{format_value(p.median, m.unit)} ({p.comparison.change_pct:+.1f}%, "
+                              f"{p.comparison.verdict})")
+    if written:
+        console.print(f"charts: {len(written)} files in {written[0].parent}")
+
+
+def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
+                       threshold: float = DEFAULT_THRESHOLD) -> int:
+    """`eaves survey --check`: the saved run against its host's baseline; EXIT_WORSE on a regression."""
+    from rich.markup import escape
+
+    from eaves.commands._verdicts import format_value
+    from eaves.store import Store
+    from eaves.trend import check_run
+
+    check = check_run(Store(db), uuid, window, threshold)
+    if not check.baseline_runs:
+        console.print("check: no earlier complete survey of this host: this run starts its baseline")
+        return 0
+    console.print(f"check: against the median of {len(check.baseline_runs)} earlier run(s), "
+                  f"threshold {threshold:.0%}")
+    for key, unit, c in check.moved:
+        style = "bold red" if c.worse else "green"
+        console.print(f"[{style}]{c.verdict}[/]: {escape(key.name())} {format_value(c.before, unit)} -> "
+                      f"{format_value(c.after, unit)} ({c.change_pct:+.1f}%)")
+    if check.regressions:
+        console.print(f"[bold red]check: {len(check.regressions)} ceiling(s) regressed beyond noise[/]")
+        return EXIT_WORSE
+    console.print("check: no ceiling regressed beyond noise")
+    return 0

@@ -1,0 +1,79 @@
+"""Two runs side by side: every ceiling and every placed layer, each judged against noise."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Optional
+
+from eaves.compare import DEFAULT_ALPHA, DEFAULT_THRESHOLD, SLOWER, Comparison, compare
+from eaves.errors import InputError, StoreError
+from eaves.gate import LayerComparison, compare_layers
+from eaves.metrics import MetricKey, ceiling_figures, lower_is_better
+from eaves.records import RunSummary, StoredRun
+
+
+@dataclass(frozen=True)
+class MetricChange:
+    """One ceiling in both runs (or in one only: `comparison` is None)."""
+
+    key: MetricKey
+    unit: str
+    comparison: Optional[Comparison]
+    present: str  # both | before only | after only
+
+
+@dataclass(frozen=True)
+class RunDiff:
+    """The whole comparison of run A (before) with run B (after)."""
+
+    before: RunSummary
+    after: RunSummary
+    metrics: tuple[MetricChange, ...]
+    layers: Optional[LayerComparison]  # None unless both runs placed layers
+    threshold: float
+    same_hardware: bool
+
+    @property
+    def worse(self) -> tuple[str, ...]:
+        """Names of everything that got worse beyond noise."""
+        names = [m.key.name() for m in self.metrics if m.comparison and m.comparison.verdict == SLOWER]
+        if self.layers:
+            names += [c.layer for c in self.layers.worse]
+        return tuple(names)
+
+
+def resolve_ref(store, ref: str, hosts: Optional[list] = None) -> int:
+    """Run id of a reference: a host key or hostname (its newest complete survey), else a run id,
+    UUID or UUID prefix. Unknown references are an InputError."""
+    hosts = store.hosts() if hosts is None else hosts
+    if any(ref in (h[0], h[1]) for h in hosts):
+        run_id = store.latest_complete_run(ref, kind="survey") or store.latest_complete_run(ref, kind="layers")
+        if run_id is None:
+            raise InputError(f"{ref}: host has no complete run in {store.shown_url}")
+        return run_id
+    try:
+        return store.resolve_run(ref)
+    except StoreError as err:
+        if err.exit_code == 2:
+            raise InputError(f"{ref}: no such run or host in {store.shown_url}") from None
+        raise
+
+
+def diff_runs(before: StoredRun, after: StoredRun, same_hardware: bool = True,
+              threshold: float = DEFAULT_THRESHOLD, alpha: float = DEFAULT_ALPHA) -> RunDiff:
+    """Every ceiling of two runs side by side, and their placed layers when both have some."""
+    a, b = ceiling_figures(before.figures), ceiling_figures(after.figures)
+    keys = list(a) + [k for k in b if k not in a]
+    changes = []
+    for k in sorted(keys, key=MetricKey.sort_key):
+        fa, fb = a.get(k), b.get(k)
+        if fa and fb and fa.unit == fb.unit:
+            cmp = compare(fa.samples, fb.samples, lower_is_better(fa.unit), threshold, alpha)
+            changes.append(MetricChange(k, fa.unit, cmp, "both"))
+        else:
+            f = fa or fb
+            changes.append(MetricChange(k, f.unit, None, "before only" if fa else "after only"))
+    layers = None
+    if before.placements and after.placements:
+        layers = compare_layers(before.placements, after.placements, threshold, alpha)
+    return RunDiff(before.summary, after.summary, tuple(changes), layers, threshold, same_hardware)
