@@ -11,7 +11,7 @@ from eaves import __version__
 from eaves.errors import EXIT_INPUT, EXIT_INTERRUPTED, EavesError
 
 # Each module in eaves.commands defines NAME, HELP, add_arguments(parser) and run(args) -> int.
-COMMANDS = ("survey", "hosts", "runs", "show", "db", "push", "merge", "place", "diff", "trend", "gate", "report")
+COMMANDS = ("survey", "hosts", "runs", "show", "db", "push", "merge", "place", "profile-torch", "diff", "trend", "gate", "report")
 
 
 class _Parser(argparse.ArgumentParser):

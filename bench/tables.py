@@ -20,12 +20,12 @@ def memory_table(ceilings: Sequence[MemoryCeiling], latency: Sequence[LatencyCei
                   caption="ˢ streaming stores  ᵐ C library memcpy  ᶜ compiler-vectorised loop  (else explicit full-width "
                   "vectors)   size: detected / OS-reported",
                   caption_justify="left")
-    table.add_column("level")
-    table.add_column("size", justify="right")
+    table.add_column("level", no_wrap=True)
+    table.add_column("size", justify="right", no_wrap=True)
     table.add_column("thr", justify="right")
     for k in KERNELS:
-        table.add_column(k, justify="right")
-    table.add_column("latency", justify="right")
+        table.add_column(k, justify="right", no_wrap=True)
+    table.add_column("latency", justify="right", no_wrap=True)
     lat = {c.level: c.ns_per_load for c in latency}
     levels = sorted({c.level for c in ceilings}, key=level_key)
     threads = sorted({c.threads for c in ceilings})
@@ -64,19 +64,23 @@ def stride_table(rows: Sequence[StrideRow], title: str) -> Table:
 
 def compute_table(rows: Sequence, title: str) -> Table:
     """Per dtype and thread count: peak, achievable GEMM, theoretical bound and the share of it."""
+    paths = {}
+    for c in rows:
+        if c.peak_variant:
+            paths.setdefault(c.dtype, c.peak_variant)
+    caption = ["OP/s for integer rows (MAC/s beside, 1 MAC = 2 OP), FLOP/s otherwise; † not native here"]
+    caption += [f"{d}: {p}" for d, p in paths.items()]
     table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False,
-                  caption="int rows in OP/s with MAC/s beside (1 MAC = 2 OP); † not a native path on this host",
-                  caption_justify="left")
-    for name in ("dtype", "thr", "peak", "MAC/s", "GEMM", "GEMM shape", "theoretical", "% of theor.", "path"):
-        table.add_column(name, justify="left" if name in ("dtype", "path", "GEMM shape") else "right")
+                  caption="\n".join(caption), caption_justify="left")
+    for name in ("dtype", "thr", "peak", "MAC/s", "GEMM", "GEMM shape", "theoretical", "of theor."):
+        table.add_column(name, justify="left" if name in ("dtype", "GEMM shape") else "right", no_wrap=True)
     for c in rows:
         unit = "OP/s" if c.dtype.startswith("int") else "FLOP/s"
         table.add_row(c.dtype + ("" if c.native else " †"), str(c.threads), format_rate(c.peak_ops_per_s, unit),
                       format_rate(c.peak_macs_per_s, "MAC/s") if c.dtype.startswith("int") else "",
                       format_rate(c.gemm_ops_per_s, unit), c.gemm_shape or "-",
                       format_rate(c.theoretical_ops_per_s, unit),
-                      "-" if c.pct_of_theoretical is None else f"{c.pct_of_theoretical:.0f}%",
-                      c.peak_variant or "-")
+                      "-" if c.pct_of_theoretical is None else f"{c.pct_of_theoretical:.0f}%")
     return table
 
 

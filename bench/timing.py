@@ -86,13 +86,34 @@ def _elapsed(call: Callable[[int], Any], repetitions: int) -> tuple[float, Any]:
 
 
 def calibrate(call: Callable[[int], Any], policy: TimingPolicy, start: int = 1) -> int:
-    """Smallest repetition count (roughly) whose call lasts at least `policy.min_seconds`."""
+    """Smallest repetition count (roughly) whose call lasts at least `policy.min_seconds`.
+
+    A call stalled by another process (a parallel region waiting for a descheduled thread)
+    looks long whatever its repetitions, so a count is accepted only once the time grows
+    with it: half the repetitions must take at most two thirds of the time.
+    """
     reps = max(1, start)
+    spent = 0.0
     while True:
-        # the faster of two calls: one call stalled by another process must not end calibration early
         seconds = min(_elapsed(call, reps)[0], _elapsed(call, reps)[0])
-        if seconds >= policy.min_seconds or reps >= policy.max_repetitions:
+        spent += 2 * seconds
+        if reps >= policy.max_repetitions or spent > max(1.0, 50 * policy.min_seconds):
             return reps
+        if seconds >= policy.min_seconds:
+            if seconds > 20 * policy.min_seconds:
+                return reps  # far longer than any scheduling stall: the work dominates
+            if reps == 1:
+                double = min(_elapsed(call, 2)[0], _elapsed(call, 2)[0])
+                spent += 2 * double
+                if double >= seconds * 3 / 2:
+                    return reps
+            else:
+                half = min(_elapsed(call, reps // 2)[0], _elapsed(call, reps // 2)[0])
+                spent += 2 * half
+                if half <= seconds * 2 / 3:
+                    return reps
+            reps = min(policy.max_repetitions, reps * 2)
+            continue
         # aim 20% past the target; grow at most 100x per step so a noisy first call can't overshoot
         scale = policy.min_seconds * 1.2 / max(seconds, 1e-9)
         reps = min(policy.max_repetitions, max(reps + 1, int(reps * min(scale, 100.0))))

@@ -47,3 +47,16 @@ def test_repeat_callable_runs_the_function_reps_times():
     calls = []
     repeat_callable(lambda: calls.append(1))(7)
     assert len(calls) == 7
+
+
+def test_a_call_stalled_by_another_process_does_not_end_calibration():
+    # a fixed 5 ms stall per call (a parallel region waiting for a descheduled thread) plus
+    # 0.05 ms of real work per repetition: the count must grow until the work dominates
+    policy = TimingPolicy(min_seconds=0.004, samples=3)
+
+    def stalled(reps):
+        end = time.perf_counter() + 0.005 + 0.00005 * reps
+        while time.perf_counter() < end:
+            pass
+
+    assert calibrate(stalled, policy) >= 64

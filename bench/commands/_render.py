@@ -32,3 +32,14 @@ def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, ti
                 r.native for r in rows if r.dtype in ("fp16", "bf16")):
             console.print("no native fp16/bf16 arithmetic path on this host: those rows (†) are emulated "
                           "and say how")
+
+
+def make_console(stderr: bool = False) -> Console:
+    """A console that wraps tables to the terminal, but 120 columns when output goes to a file or pipe,
+    and never breaks a plain line (so logs and tests see whole sentences)."""
+    import os
+    import sys
+
+    stream = sys.stderr if stderr else sys.stdout
+    width = None if stream.isatty() else int(os.environ.get("COLUMNS", 120))
+    return Console(stderr=stderr, highlight=False, width=width, soft_wrap=True)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from rich.console import Console
+from eaves.commands._render import make_console
 from rich.table import Table
 
 from eaves.store import Store
@@ -24,5 +24,5 @@ def run(args: argparse.Namespace) -> int:
         table.add_column(name)
     for key, hostname, runs, last in store.hosts():
         table.add_row(key, hostname, str(runs), last.strftime("%Y-%m-%d %H:%M") if last else "-")
-    Console(highlight=False).print(table)
+    make_console().print(table)
     return 0

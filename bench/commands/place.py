@@ -93,24 +93,31 @@ def _time_builtin(model, args):
 
 
 def _store_builtin(store, facts, model, placed, args) -> str:
+    from eaves.reference_layers import SCENARIO
+
+    return store_layers_run(store, facts, model, placed,
+                            {"builtin": True, "quick": args.quick, "threads": args.threads}, SCENARIO)
+
+
+def store_layers_run(store, facts, model, placed, params: dict, note: str) -> str:
+    """Store placements timed on this host as a complete "layers" run linked to its ceilings run."""
     from eaves import __version__
     from eaves.records import RunRecord
-    from eaves.reference_layers import SCENARIO
 
     now = dt.datetime.now(dt.timezone.utc)
     record = RunRecord(host_key=facts.host_key(), hostname=facts.hostname, fingerprint=facts.fingerprint(),
                        host_facts=facts.to_dict(), started_at=now, eaves_version=__version__,
-                       params={"builtin": True, "quick": args.quick, "threads": args.threads},
-                       kind="layers", status="complete", ended_at=now, note=SCENARIO,
+                       params=params, kind="layers", status="complete", ended_at=now, note=note,
                        ceilings_run_uuid=model.run_uuid, placements=list(placed))
     return store.save_run(record)
 
 
-def _write_json(path, model, placed, projections, curves, stored) -> None:
+def _write_json(path, model, placed, projections, curves, stored, extra=None) -> None:
     doc = {"ceilings_run": model.run_uuid, "host_key": model.host_key, "stored_run": stored,
            "layers": [dataclasses.asdict(p) for p in placed],
            "as_dtype": [dataclasses.asdict(p) for p in projections],
-           "batching": {name: [dataclasses.asdict(b) for b in pts] for name, pts in curves.items()}}
+           "batching": {name: [dataclasses.asdict(b) for b in pts] for name, pts in curves.items()},
+           **(extra or {})}
     text = json.dumps(doc, indent=2, allow_nan=False, default=str)
     if path == "-":
         sys.stdout.write(text + "\n")

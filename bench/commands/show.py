@@ -5,9 +5,8 @@ from __future__ import annotations
 import argparse
 import sys
 
-from rich.console import Console
 
-from eaves.commands._render import print_ceilings
+from eaves.commands._render import make_console, print_ceilings
 from eaves.document import run_document
 from eaves.store import Store
 
@@ -41,7 +40,7 @@ def run(args: argparse.Namespace) -> int:
         doc = run_document(meta, stored.host_facts, stored.figures, stored.placements)
         sys.stdout.write(json.dumps(doc, indent=2) + "\n")
         return 0
-    console = Console(highlight=False)
+    console = make_console()
     console.print(f"run {s.id} {s.uuid} on {s.host_key}: {s.kind}, {s.status}, started {s.started_at:%Y-%m-%d %H:%M:%S} UTC"
                   + (f", tag {s.tag}" if s.tag else "") + (f", git {s.git_describe}" if s.git_describe else ""))
     if s.note:

@@ -6,9 +6,9 @@ import argparse
 import sys
 from pathlib import Path
 
-from rich.console import Console
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
+from eaves import interrupts
 from eaves.budget import make_budget
 from eaves.charts import bandwidth_chart, scaling_chart
 from eaves.document import check_writable, run_document, write_document
@@ -16,7 +16,7 @@ from eaves.errors import EXIT_INTERRUPTED, InputError
 from eaves.host import collect_host_facts
 from eaves.memory_survey import plan_memory
 from eaves.survey import SurveyOptions, reported_caches, run_survey
-from eaves.commands._render import print_ceilings
+from eaves.commands._render import make_console, print_ceilings
 from eaves.timing import TimingPolicy
 from eaves.threads import check_thread_counts, default_thread_counts
 from eaves.units import format_bytes, parse_int_list, parse_size
@@ -39,6 +39,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--sweep-top", metavar="SIZE", help="largest working set (default 4x the last-level cache)")
     p.add_argument("--samples", metavar="N", help="samples per figure (default 5 quick, 9 full)")
     p.add_argument("--sample-seconds", metavar="S", help="minimum seconds per sample (default 0.01 quick, 0.05 full)")
+    p.add_argument("--check", action="store_true", help="after saving, compare the run with this host's baseline "
+                   "(median of its last 5 complete runs); exit 1 if a ceiling regressed beyond noise")
 
 
 def _options(args: argparse.Namespace, host) -> SurveyOptions:
@@ -122,7 +124,7 @@ def run(args: argparse.Namespace) -> int:
 
     Store(args.db or default_url()).close()  # a bad store fails now, not after the measurements
     to_stdout = args.json == "-"
-    console = Console(stderr=to_stdout, highlight=False)
+    console = make_console(stderr=to_stdout)
     for line in cautions(host, options):
         console.print(f"[yellow]![/] {line}")
     with Progress(SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn(),
@@ -132,7 +134,8 @@ def run(args: argparse.Namespace) -> int:
     record = outcome.record
     from eaves.transfer import save_or_spool
 
-    saved = save_or_spool(record, args.db)
+    with interrupts.deferred():  # a second Ctrl-C waits until the run is written
+        saved = save_or_spool(record, args.db)
     console.print(("[yellow]" if saved.spooled else "[green]") + saved.message)
     figures = record.figures
     levels = record.params.get("levels", {})
@@ -161,6 +164,10 @@ def run(args: argparse.Namespace) -> int:
     if outcome.interrupted_by:
         console.print(f"[red]interrupted by {outcome.interrupted_by}: stored as an interrupted run")
         return EXIT_INTERRUPTED
+    if args.check:
+        from eaves.commands.trend import check_after_survey
+
+        return check_after_survey(console, args.db, record.uuid, spooled=saved.spooled)
     return 0
 
 

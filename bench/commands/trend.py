@@ -120,9 +120,14 @@ def _print(t, written) -> None:
 
 
 def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
-                       threshold: float = DEFAULT_THRESHOLD) -> int:
+                       threshold: float = DEFAULT_THRESHOLD, spooled: bool = False) -> int:
     """`eaves survey --check`: the saved run against its host's baseline; EXIT_WORSE on a regression."""
     from rich.markup import escape
+
+    if spooled:  # the store was unreachable: the baseline is there too
+        console.print("[yellow]check: skipped, the run was spooled, not stored; "
+                      "`eaves push` it, then `eaves trend` shows how it compares[/]")
+        return 0
 
     from eaves.commands._verdicts import format_value
     from eaves.store import Store
