@@ -17,6 +17,7 @@ from __future__ import annotations
 import importlib
 import json
 import math
+import statistics
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -49,9 +50,7 @@ class NotCounted:
 
     @property
     def median_seconds(self) -> float:
-        s = sorted(self.seconds)
-        mid = len(s) // 2
-        return s[mid] if len(s) % 2 else 0.5 * (s[mid - 1] + s[mid])
+        return statistics.median(self.seconds)
 
 
 @dataclass(frozen=True)
