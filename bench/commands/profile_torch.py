@@ -102,6 +102,11 @@ def _print_rest(profile, stored, model, layers_file, charts) -> None:
                   f"{'x'.join(map(str, profile.input_shape))}: one pass {_seconds(passes[len(passes) // 2])}, "
                   f"{profile.layer_share:.0%} of it inside layers (the rest: code between layers, hooks)",
                   highlight=False)
+    roof = model.compute_roof(profile.dtype, profile.threads)
+    if roof is not None and roof.detail == "emulated":
+        console.print(f"note: run {model.run_uuid[:8]} measured {profile.dtype} without a native path "
+                      f"({roof.name} is emulated); PyTorch may use the host's native {profile.dtype} units and "
+                      "land above that roof", highlight=False)
     if layers_file:
         console.print(f"layer file: {layers_file} (replay: eaves place {layers_file})", highlight=False)
     if charts:
