@@ -13,7 +13,8 @@ from eaves.records import Figure
 CEILING_SUITES = ("memory", "latency", "stride", "gather", "scaling", "clock", "compute", "gemm")
 # Suites whose variant is how the figure was reached, not what it is: the best one stands for all.
 BEST_OF_VARIANTS = ("memory", "compute")
-UNIT_LABELS = {"bytes_per_s": "B/s", "ops_per_s": "OP/s", "ns_per_load": "ns/load", "hz": "Hz"}
+# The dtype a suite always measures in: names leave it out; any other dtype is named.
+USUAL_DTYPE = {"memory": "fp64", "latency": "int64", "stride": "fp64", "gather": "fp64", "scaling": "fp64"}
 
 
 @dataclass(frozen=True)
@@ -38,7 +39,7 @@ class MetricKey:
             parts.append(f"stride{self.stride_elems}")
         if self.shape:
             parts.append(self.shape)
-        if self.suite in ("compute", "gemm", "clock"):
+        if USUAL_DTYPE.get(self.suite) != self.dtype:
             parts.append(self.dtype)
         if self.variant:
             parts.append(self.variant)

@@ -19,7 +19,7 @@ from eaves.errors import InputError
 from eaves.records import PlacedLayer, RunSummary, StoredRun
 from eaves.units import format_bytes, format_rate
 
-MAX_TREND_CHARTS = 24  # drifted ceilings first; the rest are listed in the trend table
+MAX_TREND_PANELS = 12  # drifted ceilings first, then the main ones; all are listed in the trend table
 FACTS = ("hostname", "vendor", "model", "arch", "logical_cpus", "physical_cores", "sockets", "numa_nodes",
          "vector_bits", "mem_total_bytes", "nominal_hz", "max_hz", "governor", "virtual", "hypervisor",
          "kernel", "python", "numpy", "numba")
@@ -134,7 +134,7 @@ def _layers(placed: Sequence[PlacedLayer]) -> str:
 def _trends(store, host: str, window: int) -> tuple[str, int]:
     from eaves.commands._verdicts import format_value
     from eaves.trend import trend
-    from eaves.trend_chart import trend_svg
+    from eaves.trend_chart import trend_grid_svg
 
     t = trend(store, host, window=window, last=60)
     multi = [m for m in t.metrics if len(m.points) > 1]
@@ -146,12 +146,22 @@ def _trends(store, host: str, window: int) -> tuple[str, int]:
         rows.append((m.key.name(), len(m.points), format_value(m.latest.baseline, m.unit),
                      format_value(m.latest.median, m.unit), f"{c.change_pct:+.1f}%" if c else "-",
                      c.verdict if c else "no baseline", sum(p.drifted for p in m.points)))
-    shown = sorted(multi, key=lambda m: (not any(p.drifted for p in m.points), m.key.sort_key()))[:MAX_TREND_CHARTS]
-    charts = "".join(svg_img(trend_svg(m, host), f"trend of {m.key.name()}") for m in shown)
+    shown = sorted(multi, key=_panel_order)[:MAX_TREND_PANELS]
+    charts = svg_img(trend_grid_svg(shown, host), "ceilings over time")
     table = _table(("ceiling", "runs", "baseline", "newest", "change", "verdict", "drifts"), rows)
-    note = (f'<p class="muted">charts of {len(shown)} of {len(multi)} ceilings, drifted first.</p>'
+    note = (f'<p class="muted">panels for {len(shown)} of {len(multi)} ceilings: drifted first, then the '
+            "main ones; every ceiling is in the table; `eaves trend --chart DIR` draws them all.</p>"
             if len(multi) > len(shown) else "")
-    return table + note + charts, len(shown)
+    return table + note + charts, 1
+
+
+def _panel_order(m) -> tuple:
+    """Drifted first; then bandwidth at the most threads, latency, compute peaks; then the rest."""
+    k = m.key
+    main = {"memory": 0, "latency": 1, "compute": 2}.get(k.suite, 3)
+    if k.suite == "memory" and k.kernel != "read":
+        main = 3
+    return (not any(p.drifted for p in m.points), main, -k.threads if k.suite == "memory" else 0, k.sort_key())
 
 
 def _runs(runs: Sequence[RunSummary]) -> str:

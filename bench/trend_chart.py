@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 import re
 from pathlib import Path
+from typing import Sequence
 
 from eaves.charts import INK, PAPER, _pyplot, _style
 from eaves.compare import SLOWER
@@ -15,10 +16,9 @@ POINT, BASELINE, WORSE, BETTER = "#1b6f8a", "#8a857a", "#b3261e", "#3c8d2f"
 SCALE = {"bytes_per_s": (1e9, "GB/s"), "ops_per_s": (1e9, "GOP/s"), "hz": (1e9, "GHz"), "ns_per_load": (1.0, "ns")}
 
 
-def _figure(m: MetricTrend, host: str):
-    plt = _pyplot()
+def _draw(ax, m: MetricTrend, legend: bool = True) -> None:
+    """One ceiling's history on `ax`: medians with quartile bars, the baseline, drift circled."""
     scale, label = SCALE.get(m.unit, (1.0, m.unit))
-    fig, ax = plt.subplots(figsize=(7.5, 3.0), facecolor=PAPER)
     _style(ax)
     xs = [p.run.started_at for p in m.points]
     ys = [p.median / scale for p in m.points]
@@ -36,11 +36,43 @@ def _figure(m: MetricTrend, host: str):
         if pts:
             ax.scatter(*zip(*pts), s=46, facecolors="none", edgecolors=colour, linewidths=1.6, zorder=5, label=name)
     ax.set_ylabel(label)
-    ax.legend(loc="best", fontsize=7, frameon=False)
+    if legend:
+        ax.legend(loc="best", fontsize=7, frameon=False)
+
+
+def _figure(m: MetricTrend, host: str):
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(7.5, 3.0), facecolor=PAPER)
+    _draw(ax, m)
     fig.autofmt_xdate()
     fig.suptitle(f"{host}: {m.key.name()}", x=0.01, ha="left", fontsize=9, color=INK)
     fig.tight_layout()
     return plt, fig
+
+
+def trend_grid_svg(metrics: Sequence[MetricTrend], host: str, columns: int = 3) -> str:
+    """Several ceilings' histories as small panels of one SVG (one drawing: quick for a page)."""
+    plt = _pyplot()
+    rows = -(-len(metrics) // columns)
+    fig, axes = plt.subplots(rows, columns, figsize=(3.6 * columns, 2.5 * rows), facecolor=PAPER, squeeze=False)
+    import matplotlib.dates as mdates
+
+    for ax, m in zip(axes.flat, metrics):
+        _draw(ax, m, legend=False)
+        ax.set_title(m.key.name(), fontsize=8, color=INK, loc="left")
+        ax.tick_params(labelsize=7)
+        locator = mdates.AutoDateLocator(maxticks=4)
+        ax.xaxis.set_major_locator(locator)
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+    for ax in list(axes.flat)[len(metrics):]:
+        ax.set_visible(False)
+    fig.suptitle(f"{host}: ceilings over time (dashed: baseline; circled: drift)", x=0.01, ha="left",
+                 fontsize=9, color=INK)
+    fig.subplots_adjust(left=0.06, right=0.98, top=1 - 0.45 / rows, bottom=0.25 / rows, wspace=0.28, hspace=0.55)
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", facecolor=PAPER, metadata={"Date": None})
+    plt.close(fig)
+    return buf.getvalue()
 
 
 def trend_svg(m: MetricTrend, host: str) -> str:

@@ -1,0 +1,106 @@
+"""`eaves trend` and `eaves survey --check`: rolling baseline, drift flags, charts, bad input."""
+
+from __future__ import annotations
+
+import json
+import statistics
+
+import numpy as np
+import pytest
+from history_fixtures import T0, fill_history, history_figures, survey_record
+from layer_fixtures import HOSTNAME
+from rich.console import Console
+
+from eaves.cli import build_parser, main
+from eaves.commands.trend import check_after_survey
+from eaves.errors import EXIT_INPUT, EXIT_WORSE
+from eaves.store import Store
+from eaves.trend import check_run, trend
+
+
+@pytest.fixture
+def store(tmp_path):
+    return Store(f"sqlite:///{tmp_path / 't.db'}")
+
+
+def test_drift_is_flagged_from_the_run_it_starts_and_not_before(store):
+    fill_history(store, 15, seed=11, drift_from=9, drift={"memory/copy/DRAM": 0.8})
+    t = trend(store, HOSTNAME, window=5)
+    dram = next(m for m in t.metrics if m.key.name() == "memory/copy/DRAM/1t")
+    flags = [p.drifted for p in dram.points]
+    assert flags[:9] == [False] * 9 and flags[9] is True
+    assert dram.points[9].comparison.verdict == "slower"
+    # the baseline of a run is the median of the medians of the 5 runs before it
+    assert dram.points[9].baseline == pytest.approx(statistics.median(p.median for p in dram.points[4:9]))
+    # once the drop has become the baseline, it is no longer drift
+    assert dram.points[-1].baseline < 0.9 * dram.points[0].median
+    quiet = [m for m in t.metrics if not m.key.name().startswith("memory/copy/DRAM")]
+    assert not any(p.drifted for m in quiet for p in m.points)  # 1 % noise never crosses 3 %
+
+
+def test_cli_filters_by_metric_and_date_and_draws_charts(store, tmp_path, capsys):
+    fill_history(store, 8, seed=2, drift_from=7, drift={"latency/chase/DRAM": 1.25})
+    since = (T0.replace(tzinfo=None)).isoformat()[:10]
+    code = main(["trend", "--host", HOSTNAME, "--metric", "latency/*", "--since", "2026-02-04",
+                 "--chart", str(tmp_path / "charts"), "--json", "--db", store.url])
+    doc = json.loads(capsys.readouterr().out)
+    assert code == EXIT_WORSE  # the newest run's DRAM latency regressed
+    assert {c["suite"] for c in doc["ceilings"]} == {"latency"} and since == "2026-02-01"
+    assert all(p["started_at"] >= "2026-02-04" for c in doc["ceilings"] for p in c["points"])
+    first = doc["ceilings"][0]["points"][0]
+    assert first["baseline"] is not None  # runs before --since still form the first baseline
+    dram = next(c for c in doc["ceilings"] if c["cache_level"] == "DRAM")
+    assert dram["points"][-1]["drifted"] and dram["points"][-1]["comparison"]["verdict"] == "slower"
+    charts = sorted((tmp_path / "charts").iterdir())
+    assert len(charts) == 2 * len(doc["ceilings"]) and all(p.stat().st_size > 1000 for p in charts)
+
+
+def test_table_output_lists_drift(store, capsys):
+    fill_history(store, 7, seed=4, drift_from=6, drift={"compute/madd-peak": 0.7})
+    assert main(["trend", "--host", HOSTNAME, "--metric", "compute", "--db", store.url]) == EXIT_WORSE
+    out = capsys.readouterr().out
+    assert "drift: compute/madd-peak/fp32/1t" in out and "slower" in out
+
+
+@pytest.mark.parametrize("argv, needle", [
+    (["--host", "nobody"], "no such host"),
+    (["--host", HOSTNAME, "--since", "yesterday"], "not a date"),
+    (["--host", HOSTNAME, "--metric", "nothing-like-this"], "no ceiling"),
+    (["--host", HOSTNAME, "--window", "0"], "--window"),
+])
+def test_bad_input_is_one_line_exit_2(store, capsys, argv, needle):
+    fill_history(store, 2)
+    code = main(["trend", *argv, "--db", store.url])
+    err = capsys.readouterr().err
+    assert code == EXIT_INPUT and needle in err and len(err.strip().splitlines()) == 1
+
+
+def test_survey_check_flags_a_failing_memory_module(store):
+    # six quiet nights, then the same host with DRAM bandwidth down 30 % (a failing module)
+    fill_history(store, 6, seed=8)
+    rng = np.random.default_rng(99)
+    bad = store.save_run(survey_record(history_figures(rng, scale={"memory/read/DRAM": 0.7,
+                                                                    "memory/copy/DRAM": 0.7}), 6))
+    check = check_run(store, bad, window=5)
+    assert len(check.baseline_runs) == 5
+    assert {k.name() for k, _, _ in check.regressions} == {
+        "memory/read/DRAM/1t", "memory/read/DRAM/2t", "memory/copy/DRAM/1t", "memory/copy/DRAM/2t"}
+    console = Console(record=True, width=200)
+    assert check_after_survey(console, store.url, bad) == EXIT_WORSE
+    text = console.export_text()
+    assert "memory/read/DRAM/1t" in text and "regressed" in text
+    good = store.save_run(survey_record(history_figures(rng), 7))
+    assert check_after_survey(Console(record=True), store.url, good) == 0
+
+
+def test_first_survey_starts_the_baseline_and_spooled_runs_are_not_checked(store):
+    (uuid,) = fill_history(store, 1)
+    console = Console(record=True)
+    assert check_after_survey(console, store.url, uuid) == 0 and "starts its baseline" in console.export_text()
+    assert check_after_survey(console, store.url, uuid, spooled=True) == 0
+    assert "spooled" in console.export_text()
+
+
+def test_survey_has_the_check_flag():
+    args = build_parser().parse_args(["survey", "--quick", "--tag", "nightly", "--check"])
+    assert args.check is True
