@@ -68,8 +68,8 @@ def plan_memory(llc_bytes: Optional[int], thread_counts: Sequence[int], budget: 
                       policy or (TimingPolicy.quick() if quick else TimingPolicy.full()), per_octave)
 
 
-def _measure(bound, policy: TimingPolicy, what: str):
-    timing = sample(bound, policy)
+def _measure(bound, policy: TimingPolicy, what: str, start: int = 1):
+    timing = sample(bound, policy, start=start)
     for got, want in timing.results:
         if not math.isclose(got, want, rel_tol=CHECK_TOLERANCE, abs_tol=1e-6):
             raise BrokenKernelError(f"{what}: checksum {got!r} differs from the expected {want!r}")
@@ -118,11 +118,14 @@ def measure_memory(plan: MemoryPlan, reported: Sequence[CacheCapacity], progress
             curves: dict[str, list[Figure]] = {}
             for kernel in sweep_kernels:
                 curve = curves.setdefault(kernel.name, [])
-                for size in plan.sizes:
+                guess = 1
+                for i, size in enumerate(plan.sizes):
                     elems = size // (8 * kernel.arrays) // 8 * 8
                     progress(f"sweep {kernel.name} {size >> 10} KiB x{threads}")
                     bound = kernel.bind(a, b, elems, threads)
-                    timing = _measure(bound, policy, f"{kernel.name}/{kernel.variant} at {size} B")
+                    timing = _measure(bound, policy, f"{kernel.name}/{kernel.variant} at {size} B", guess)
+                    if i + 1 < len(plan.sizes):  # the next size needs about proportionally fewer repetitions
+                        guess = max(1, timing.repetitions * size // plan.sizes[i + 1])
                     curve.append(_figure("sweep", kernel, threads, size, timing, elems, policy))
                     result.figures.append(curve[-1])
             capacities = _capacities(reported, shares, threads)

@@ -90,28 +90,24 @@ def calibrate(call: Callable[[int], Any], policy: TimingPolicy, start: int = 1) 
 
     A call stalled by another process (a parallel region waiting for a descheduled thread)
     looks long whatever its repetitions, so a count is accepted only once the time grows
-    with it: half the repetitions must take at most two thirds of the time.
+    with it: half the repetitions must take at most three quarters of the time. `start` is a
+    guess (the count that suited a neighbouring size) that saves steps when it is good.
     """
     reps = max(1, start)
     spent = 0.0
     while True:
-        seconds = min(_elapsed(call, reps)[0], _elapsed(call, reps)[0])
-        spent += 2 * seconds
-        if reps >= policy.max_repetitions or spent > max(1.0, 50 * policy.min_seconds):
+        seconds = _elapsed(call, reps)[0]
+        spent += seconds
+        if reps >= policy.max_repetitions or spent > max(0.25, 25 * policy.min_seconds):
             return reps
         if seconds >= policy.min_seconds:
             if seconds > 20 * policy.min_seconds:
                 return reps  # far longer than any scheduling stall: the work dominates
-            if reps == 1:
-                double = min(_elapsed(call, 2)[0], _elapsed(call, 2)[0])
-                spent += 2 * double
-                if double >= seconds * 3 / 2:
-                    return reps
-            else:
-                half = min(_elapsed(call, reps // 2)[0], _elapsed(call, reps // 2)[0])
-                spent += 2 * half
-                if half <= seconds * 2 / 3:
-                    return reps
+            other = 2 * reps if reps == 1 else reps // 2
+            check = _elapsed(call, other)[0]
+            spent += check
+            if (other > reps and check >= seconds * 4 / 3) or (other < reps and check <= seconds * 3 / 4):
+                return reps
             reps = min(policy.max_repetitions, reps * 2)
             continue
         # aim 20% past the target; grow at most 100x per step so a noisy first call can't overshoot
@@ -119,14 +115,16 @@ def calibrate(call: Callable[[int], Any], policy: TimingPolicy, start: int = 1) 
         reps = min(policy.max_repetitions, max(reps + 1, int(reps * min(scale, 100.0))))
 
 
-def sample(call: Callable[[int], Any], policy: TimingPolicy, repetitions: int | None = None) -> Timing:
+def sample(call: Callable[[int], Any], policy: TimingPolicy, repetitions: int | None = None,
+           start: int = 1) -> Timing:
     """Time `call(repetitions)` `policy.samples` times; seconds are per repetition.
 
-    The call is made once untimed first (warm-up: JIT compilation, page faults, caches).
-    The result of every timed call is kept so the caller can verify its checksum.
+    One untimed call warms up first (JIT compilation or cache loading, page faults, caches),
+    then the count is calibrated unless `repetitions` is given. The result of every timed
+    call is kept so the caller can verify its checksum.
     """
     call(1)
-    reps = repetitions or calibrate(call, policy)
+    reps = repetitions or calibrate(call, policy, start)
     seconds, results = [], []
     for _ in range(policy.samples):
         elapsed, result = _elapsed(call, reps)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 from llvmlite import ir
 from numba import njit, prange, types
+from numba.core import cgutils
 from numba.extending import intrinsic
 
 from eaves.kernels.memory import FAST, LINE_ELEMS, _slice
@@ -100,29 +101,28 @@ def copy_stream(dst, src, reps, nthreads):
     return partial.sum()
 
 
-def _libc_memcpy():
-    import ctypes
-    import ctypes.util
+@intrinsic
+def _memcpy(typingctx, dst, src, nbytes):
+    """Copy `nbytes` from array src to array dst with LLVM's memcpy intrinsic, which the backend
+    turns into a call to the C library's memcpy for sizes it does not know."""
+    def codegen(context, builder, sig, args):
+        byte_ptr = ir.IntType(8).as_pointer()
+        d = builder.bitcast(context.make_array(sig.args[0])(context, builder, args[0]).data, byte_ptr)
+        s = builder.bitcast(context.make_array(sig.args[1])(context, builder, args[1]).data, byte_ptr)
+        cgutils.raw_memcpy(builder, d, s, args[2], 1)
+        return context.get_dummy_value()
+    return types.void(dst, src, types.intp), codegen
 
-    libc = ctypes.CDLL(ctypes.util.find_library("c") or None)
-    fn = libc.memcpy
-    fn.argtypes = [ctypes.c_void_p, ctypes.c_void_p, ctypes.c_size_t]
-    fn.restype = ctypes.c_void_p
-    return fn
 
-
-_memcpy = _libc_memcpy()
-
-
-@njit(parallel=True, cache=False)  # a ctypes function pointer cannot be cached across processes
+@njit(parallel=True, cache=True)
 def copy_memcpy(dst, src, reps, nthreads):
-    """`copy` through the C library's memcpy, one call per thread slice and repetition."""
+    """`copy` through memcpy, one call per thread slice and repetition."""
     partial = np.zeros(nthreads)
     for t in prange(nthreads):
         lo, hi = _slice(t, nthreads, src.shape[0])
         d = dst[lo:hi]
         s = src[lo:hi]
         for _ in range(reps):
-            _memcpy(d.ctypes.data, s.ctypes.data, s.shape[0] * 8)
+            _memcpy(d, s, s.shape[0] * 8)
         partial[t] = d[0] + d[-1]
     return partial.sum()
