@@ -122,7 +122,8 @@ def test_repetitions_are_not_optimised_away():
     # the time of a read must grow with the repetitions it is asked for
     a = np.ones(4096)
     mem.read_sum(a, 1, 1)
-    t1 = min(sample(lambda r: mem.read_sum(a, r, 1), TINY, repetitions=2000).seconds)
-    t2 = min(sample(lambda r: mem.read_sum(a, r, 1), TINY, repetitions=8000).seconds)
+    policy = TimingPolicy(min_seconds=0.0, samples=5)
+    t1 = min(sample(lambda r: mem.read_sum(a, r, 1), policy, repetitions=20_000).seconds)
+    t2 = min(sample(lambda r: mem.read_sum(a, r, 1), policy, repetitions=80_000).seconds)
     # seconds are per repetition: equal within noise, not four times smaller
     assert t2 > t1 / 2
