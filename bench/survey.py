@@ -114,6 +114,7 @@ def run_survey(host: HostFacts, options: SurveyOptions, progress: Progress = lam
                                               options.budget.cap_bytes, progress,
                                               mode="quick" if options.quick else "full")
         check_physical_bounds(host, record.figures)
+        outcome.notes += consistency_notes(record.figures)
     outcome.interrupted_by = stop.signal
     record.status = "interrupted" if stop.signal else "complete"
     record.ended_at = dt.datetime.now(dt.timezone.utc)
@@ -150,3 +151,18 @@ def check_physical_bounds(host: HostFacts, figures: Sequence[Figure]) -> None:
             if f.best < cycle_ns:
                 raise BrokenKernelError(f"chase at {f.working_set_bytes} B: {f.best:.3g} ns per load is below "
                                         f"one clock cycle ({cycle_ns:.3g} ns): a broken kernel")
+
+
+def consistency_notes(figures: Sequence[Figure]) -> list[str]:
+    """Relations no honest host breaks; when one is broken a measurement was disturbed (noise)."""
+    notes = []
+    peaks = {(f.dtype, f.threads): f.median for f in figures if f.suite == "compute"}
+    for f in figures:
+        if f.suite == "gemm" and f.median > peaks.get((f.dtype, f.threads), float("inf")) * 1.02:
+            notes.append(f"{f.dtype} GEMM {f.shape} x{f.threads} ran faster than the multiply-add peak measured "
+                         f"at the same thread count: that peak was disturbed (another process?); rerun when quiet")
+    reads = {(f.cache_level, f.threads): f.median for f in figures if f.suite == "memory" and f.kernel == "read"}
+    for (level, threads), rate in reads.items():
+        if level != "DRAM" and rate < reads.get(("DRAM", threads), 0.0):
+            notes.append(f"{level} read x{threads} measured below DRAM read: a disturbed measurement; rerun when quiet")
+    return list(dict.fromkeys(notes))

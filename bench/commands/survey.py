@@ -156,6 +156,10 @@ def run(args: argparse.Namespace) -> int:
         console.print(f"chart: {png}")
     for note in outcome.notes:
         console.print(f"[yellow]note:[/] {note}")
+    seconds = (record.ended_at - record.started_at).total_seconds()
+    buffers = 2 * options.memory_plan.buffer_bytes if "memory" in options.parts else 0
+    console.print(f"measured in {seconds:.1f} s; memory buffers {format_bytes(buffers)} "
+                  f"(cap {format_bytes(options.budget.cap_bytes)})")
     if args.json:
         doc = run_document(_run_meta(record, saved), record.host_facts, figures)
         text = write_document(doc, args.json)
