@@ -64,22 +64,17 @@ def key_of(f: Figure) -> MetricKey:
 
 def ceiling_figures(figures: Iterable[Figure]) -> dict[MetricKey, Figure]:
     """Every ceiling figure of a run by its key; where several figures share a key (variants of a
-    memory kernel, multiply-add kernels), the one with the best median, as the ceiling tables pick."""
-    out: dict[MetricKey, Figure] = {}
+    memory kernel, multiply-add kernels), the one with the best median, as the ceiling tables pick.
+    Works on anything with a figure's identity fields, `unit` and `median` (Figure, FigureSummary)."""
+    best: dict[MetricKey, tuple[float, Figure]] = {}
     for f in figures:
-        if f.suite not in CEILING_SUITES or not f.samples:
+        if f.suite not in CEILING_SUITES or (f.suite == "memory" and not f.cache_level):
             continue
-        if f.suite == "memory" and not f.cache_level:
-            continue
-        k = key_of(f)
-        old = out.get(k)
-        if old is None or _better(f, old):
-            out[k] = f
-    return dict(sorted(out.items(), key=lambda kv: kv[0].sort_key()))
-
-
-def _better(f: Figure, old: Figure) -> bool:
-    return f.median < old.median if lower_is_better(f.unit) else f.median > old.median
+        k, value = key_of(f), f.median
+        old = best.get(k)
+        if old is None or (value < old[0] if lower_is_better(f.unit) else value > old[0]):
+            best[k] = (value, f)
+    return {k: best[k][1] for k in sorted(best, key=MetricKey.sort_key)}
 
 
 def matches(key: MetricKey, patterns: Optional[Sequence[str]]) -> bool:

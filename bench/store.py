@@ -341,6 +341,31 @@ class Store:
                                             min_seconds=r[12]))
         return out
 
+    def figure_summaries(self, run_ids: list[int], suites: tuple[str, ...]) -> list[tuple]:
+        """(id, run_id, suite, kernel, variant, dtype, threads, cache_level, stride_elems, shape, unit,
+        median, q1, q3) of many runs' figures: no samples to decode, for long histories."""
+        m = Measurement
+        cols = (m.id, m.run_id, m.suite, m.kernel, m.variant, m.dtype, m.threads, m.cache_level, m.stride_elems,
+                m.shape, *(getattr(m, u) for u in FIGURE_UNITS), m.q1, m.q3)
+        out = []
+        with self._errors("cannot read"), self.engine.connect() as conn:
+            for start in range(0, len(run_ids), 500):
+                q = select(*cols).where(m.run_id.in_(run_ids[start:start + 500]), m.suite.in_(suites))
+                for r in conn.execute(q):
+                    unit, value = next((u, v) for u, v in zip(FIGURE_UNITS, r[10:14]) if v is not None)
+                    out.append((*r[:10], unit, value, r[14], r[15]))
+        return out
+
+    def samples_of(self, measurement_ids: list[int]) -> dict[int, tuple[float, ...]]:
+        """The samples of some figures, by measurement id."""
+        out: dict[int, tuple[float, ...]] = {}
+        with self._errors("cannot read"), self.engine.connect() as conn:
+            for start in range(0, len(measurement_ids), 500):
+                q = select(Measurement.id, Measurement.samples).where(
+                    Measurement.id.in_(measurement_ids[start:start + 500]))
+                out.update((i, tuple(s)) for i, s in conn.execute(q))
+        return out
+
 
 def _insert_record(session: Session, record: RunRecord) -> bool:
     if session.scalar(select(Run.id).where(Run.uuid == record.uuid)) is not None:

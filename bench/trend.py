@@ -89,12 +89,34 @@ class BaselineCheck:
         return tuple(c for c in self.changes if c[2].verdict != NOISE)
 
 
-def _quartiles(samples: Sequence[float]) -> tuple[float, float]:
-    s = sorted(samples)
-    if len(s) < 2:
-        return s[0], s[0]
-    q = statistics.quantiles(s, n=4, method="inclusive")
-    return q[0], q[2]
+@dataclass(frozen=True)
+class FigureSummary:
+    """A stored figure without its samples: enough to follow a long history quickly."""
+
+    id: int
+    run_id: int
+    suite: str
+    kernel: str
+    variant: Optional[str]
+    dtype: str
+    threads: int
+    cache_level: Optional[str]
+    stride_elems: Optional[int]
+    shape: Optional[str]
+    unit: str
+    median: float
+    q1: float
+    q3: float
+
+
+def _judge(baseline_medians: Sequence[float], median: float, unit: str, threshold: float) -> Optional[Comparison]:
+    """The verdict when the threshold alone settles it (the rank test cannot overturn "within noise"),
+    else None: the samples must be tested."""
+    baseline = statistics.median(baseline_medians)
+    if abs(median - baseline) < threshold * abs(baseline):
+        return Comparison(baseline, median, (median - baseline) / baseline if baseline else 0.0, None, "threshold",
+                          NOISE, lower_is_better(unit), len(baseline_medians), 0)
+    return None
 
 
 def against_baseline(history: Sequence[Figure], current: Figure, threshold: float,
@@ -102,19 +124,22 @@ def against_baseline(history: Sequence[Figure], current: Figure, threshold: floa
     """`current` against the baseline made of the figures in `history` (None if empty)."""
     if not history:
         return None
-    baseline = statistics.median(f.median for f in history)
+    medians = [f.median for f in history]
+    quick = _judge(medians, current.median, current.unit, threshold)
+    if quick is not None:
+        return quick
     pooled = [x for f in history for x in f.samples]
-    lower = lower_is_better(current.unit)
-    if abs(current.median - baseline) < threshold * abs(baseline):  # cheap: the test cannot overturn this
-        return Comparison(baseline, current.median, (current.median - baseline) / baseline if baseline else 0.0,
-                          None, "threshold", NOISE, lower, len(pooled), len(current.samples))
-    return compare(pooled, current.samples, lower, threshold, alpha, reference=baseline)
+    return compare(pooled, current.samples, lower_is_better(current.unit), threshold, alpha,
+                   reference=statistics.median(medians))
 
 
 def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Optional[dt.datetime] = None,
           window: int = DEFAULT_WINDOW, threshold: float = DEFAULT_THRESHOLD, last: Optional[int] = DEFAULT_LAST,
           alpha: float = DEFAULT_ALPHA) -> Trend:
-    """The history of each ceiling of `host` (host key or hostname), each run against its baseline."""
+    """The history of each ceiling of `host` (host key or hostname), each run against its baseline.
+
+    Medians and quartiles come from the stored columns; samples are read only for the points whose
+    move from the baseline passes the threshold, where the rank test has to decide."""
     if window < 1:
         raise InputError(f"--window: {window} must be at least 1")
     every = store.run_history(host, "survey", last=None if since or not last else last + window)
@@ -124,29 +149,45 @@ def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Opt
         cut = max(0, len(every) - last) if last else 0
     earlier, shown = every[max(0, cut - window):cut], every[cut:]
     runs = [RunRef(*r) for r in earlier + shown]
-    figures = store.figures_of([r.id for r in runs], CEILING_SUITES)
-    per_run = {r.id: ceiling_figures(figures.get(r.id, ())) for r in runs}
+    by_run: dict[int, list[FigureSummary]] = {r.id: [] for r in runs}
+    for row in store.figure_summaries([r.id for r in runs], CEILING_SUITES):
+        by_run[row[1]].append(FigureSummary(*row))
+    per_run = {r.id: ceiling_figures(by_run[r.id]) for r in runs}
     keys: dict[MetricKey, str] = {}
     for r in runs:
         for k, f in per_run[r.id].items():
             if k not in keys and matches(k, patterns):
                 keys[k] = f.unit
     n_earlier = len(earlier)
-    metrics = []
+    series = []  # per key: [(run index, figure, baseline figures, verdict or None)]
+    to_test: set[int] = set()
     for k in sorted(keys, key=MetricKey.sort_key):
-        seen: list[Figure] = []
-        points = []
+        seen: list[FigureSummary] = []
+        rows = []
         for i, r in enumerate(runs):
             f = per_run[r.id].get(k)
             if f is None or f.unit != keys[k]:
                 continue
-            cmp = against_baseline(seen[-window:], f, threshold, alpha)
+            history = seen[-window:]
+            quick = _judge([h.median for h in history], f.median, f.unit, threshold) if history else None
+            if history and quick is None and i >= n_earlier:
+                to_test.update([f.id, *(h.id for h in history)])
             if i >= n_earlier:
-                q1, q3 = _quartiles(f.samples)
-                points.append(TrendPoint(r, f.median, q1, q3, cmp.before if cmp else None, cmp))
+                rows.append((r, f, history, quick))
             seen.append(f)
-        if points:
-            metrics.append(MetricTrend(k, keys[k], tuple(points)))
+        if rows:
+            series.append((k, rows))
+    samples = store.samples_of(sorted(to_test)) if to_test else {}
+    metrics = []
+    for k, rows in series:
+        points = []
+        for r, f, history, cmp in rows:
+            if history and cmp is None:
+                pooled = [x for h in history for x in samples[h.id]]
+                cmp = compare(pooled, samples[f.id], lower_is_better(f.unit), threshold, alpha,
+                              reference=statistics.median(h.median for h in history))
+            points.append(TrendPoint(r, f.median, f.q1, f.q3, cmp.before if cmp else None, cmp))
+        metrics.append(MetricTrend(k, keys[k], tuple(points)))
     return Trend(host, tuple(RunRef(*r) for r in shown), tuple(metrics), window, threshold)
 
 

@@ -16,6 +16,7 @@ from eaves.commands.trend import check_after_survey
 from eaves.errors import EXIT_INPUT, EXIT_WORSE
 from eaves.store import Store
 from eaves.trend import check_run, trend
+from store_backends import store_url  # noqa: F401  (fixture)
 
 
 @pytest.fixture
@@ -104,3 +105,13 @@ def test_first_survey_starts_the_baseline_and_spooled_runs_are_not_checked(store
 def test_survey_has_the_check_flag():
     args = build_parser().parse_args(["survey", "--quick", "--tag", "nightly", "--check"])
     assert args.check is True
+
+
+def test_history_queries_on_each_backend(store_url):
+    # the light history queries (medians, quartiles, samples on demand) on SQLite and PostgreSQL
+    s = Store(store_url)
+    fill_history(s, 7, seed=6, drift_from=6, drift={"memory/read/L2": 0.8})
+    t = trend(s, HOSTNAME, patterns=["memory/read/L2*"], window=3)
+    assert [m.key.name() for m in t.metrics] == ["memory/read/L2/1t", "memory/read/L2/2t"]
+    assert all(m.latest.drifted and m.latest.comparison.p_value is not None for m in t.metrics)
+    assert all(p.q1 <= p.median <= p.q3 for m in t.metrics for p in m.points)
