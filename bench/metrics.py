@@ -12,7 +12,7 @@ from eaves.records import Figure
 # Suites whose figures are ceilings (the sweep is every working-set point: a curve, not a ceiling).
 CEILING_SUITES = ("memory", "latency", "stride", "gather", "scaling", "clock", "compute", "gemm")
 # Suites whose variant is how the figure was reached, not what it is: the best one stands for all.
-BEST_OF_VARIANTS = ("memory", "compute")
+BEST_OF_VARIANTS = ("memory", "compute", "gemm")
 # The dtype a suite always measures in: names leave it out; any other dtype is named.
 USUAL_DTYPE = {"memory": "fp64", "latency": "int64", "stride": "fp64", "gather": "fp64", "scaling": "fp64"}
 

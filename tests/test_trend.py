@@ -115,3 +115,14 @@ def test_history_queries_on_each_backend(store_url):
     assert [m.key.name() for m in t.metrics] == ["memory/read/L2/1t", "memory/read/L2/2t"]
     assert all(m.latest.drifted and m.latest.comparison.p_value is not None for m in t.metrics)
     assert all(p.q1 <= p.median <= p.q3 for m in t.metrics for p in m.points)
+
+
+def test_a_baseline_of_fewer_than_three_runs_reports_but_does_not_fail(store):
+    fill_history(store, 2, seed=8)
+    bad = store.save_run(survey_record(history_figures(np.random.default_rng(3),
+                                                       scale={"memory/read/DRAM": 0.7}), 2))
+    console = Console(record=True, width=200)
+    assert check_after_survey(console, store.url, bad) == 0
+    text = console.export_text()
+    assert "slower: memory/read/DRAM/1t" in text and "needs 3" in text
+    assert main(["trend", "--host", HOSTNAME, "--db", store.url]) == 0  # the same rule for trend's exit code

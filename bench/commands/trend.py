@@ -8,7 +8,7 @@ import sys
 
 from eaves.compare import DEFAULT_THRESHOLD
 from eaves.errors import EXIT_WORSE, InputError
-from eaves.trend import DEFAULT_LAST, DEFAULT_WINDOW
+from eaves.trend import DEFAULT_LAST, DEFAULT_WINDOW, MIN_BASELINE_RUNS
 
 HELP = "history of a host's ceilings, each run against the median of the runs before it; drift flagged"
 
@@ -65,7 +65,8 @@ def run(args: argparse.Namespace) -> int:
         sys.stdout.write(json.dumps(_document(result), indent=2, default=str, allow_nan=False) + "\n")
     else:
         _print(result, written)
-    drifted = [m for m in result.metrics if m.latest.drifted and m.latest.comparison.worse]
+    drifted = [m for m in result.metrics if m.latest.drifted and m.latest.comparison.worse
+               and m.latest.baseline_runs >= MIN_BASELINE_RUNS]
     return EXIT_WORSE if drifted else 0
 
 
@@ -143,6 +144,10 @@ def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
         style = "bold red" if c.worse else "green"
         console.print(f"[{style}]{c.verdict}[/]: {escape(key.name())} {format_value(c.before, unit)} -> "
                       f"{format_value(c.after, unit)} ({c.change_pct:+.1f}%)")
+    if check.regressions and len(check.baseline_runs) < MIN_BASELINE_RUNS:
+        console.print(f"[yellow]check: the baseline has {len(check.baseline_runs)} run(s); failing on a "
+                      f"regression needs {MIN_BASELINE_RUNS}, so this is reported, not failed[/]")
+        return 0
     if check.regressions:
         console.print(f"[bold red]check: {len(check.regressions)} ceiling(s) regressed beyond noise[/]")
         return EXIT_WORSE
