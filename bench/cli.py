@@ -10,8 +10,9 @@ from typing import Optional, Sequence
 from eaves import __version__
 from eaves.errors import EXIT_INPUT, EXIT_INTERRUPTED, EavesError
 
-# Each module in eaves.commands defines NAME, HELP, add_arguments(parser) and run(args) -> int.
-COMMANDS = ("survey", "hosts", "runs", "show", "db", "push", "merge", "place", "profile-torch", "diff", "trend", "gate", "report")
+# Each module in eaves.commands defines HELP, add_arguments(parser) and run(args) -> int.
+COMMANDS = ("survey", "hosts", "runs", "show", "place", "profile-torch", "diff", "trend", "gate", "report",
+            "db", "push", "merge")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -21,11 +22,13 @@ class _Parser(argparse.ArgumentParser):
         raise EavesError(f"{self.prog}: {message}", EXIT_INPUT)
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(only: Optional[str] = None) -> argparse.ArgumentParser:
+    """The whole parser, or with `only` just that command's (so a command imports only its own
+    module: numba, matplotlib and the rest load when a command needs them)."""
     parser = _Parser(prog="eaves", description="Measure this host's ceilings and place layers under them.")
     parser.add_argument("--version", action="version", version=f"eaves {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for name in COMMANDS:
+    for name in COMMANDS if only is None else (only,):
         module = importlib.import_module(f"eaves.commands.{name.replace('-', '_')}")
         p = sub.add_parser(name, help=module.HELP, description=module.HELP)
         module.add_arguments(p)
@@ -36,8 +39,10 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Optional[Sequence[str]] = None) -> int:
     """Entry point of the `eaves` command; returns the exit code."""
     try:
-        parser = build_parser()
-        args = parser.parse_args(argv)
+        words = list(sys.argv[1:] if argv is None else argv)
+        chosen = next((w for w in words if not w.startswith("-")), None)
+        parser = build_parser(chosen if chosen in COMMANDS else None)
+        args = parser.parse_args(words)
         if not getattr(args, "_run", None):
             parser.print_help()
             return EXIT_INPUT
