@@ -5,7 +5,7 @@ test of whether one of two random variables is stochastically larger than the ot
 Mathematical Statistics 18, 1947) rejects "same distribution" at `alpha`, and the medians differ
 by at least `threshold` (a fraction; the practical threshold). The test uses only ranks, so one
 preempted sample cannot drag it the way it drags a mean; with few samples and no ties its p-value
-is exact. See docs/comparison.md for the choice and its false-alarm and power figures.
+is exact. See the README's "Comparing runs" for the choice and its false-alarm and power figures.
 """
 
 from __future__ import annotations

@@ -17,7 +17,7 @@ HELP = "place layer timings under this host's measured roofs (from a file or the
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("file", nargs="?", help="layer timings, CSV or JSON (see docs/layer-format.md)")
+    parser.add_argument("file", nargs="?", help="layer timings, CSV or JSON (see the README: Placing layers)")
     parser.add_argument("--builtin", action="store_true",
                         help="time the built-in reference layers on this host, place them and store them")
     parser.add_argument("--quick", action="store_true", help="with --builtin: small layers, short samples")
