@@ -14,8 +14,8 @@ from typing import Any, Callable, Optional, Sequence
 import numpy as np
 
 from eaves.errors import BrokenKernelError, InputError
-from eaves.peak import (TOLERANCE, Bound, check_below, infer_madd_units, lanes_of, theoretical_ops_per_s,
-                        units_per_cycle)
+from eaves.peak import (MAX_TILE_MACS_PER_CYCLE, TOLERANCE, Bound, check_below, infer_madd_units,
+                        infer_tile_macs_per_cycle, lanes_of, theoretical_ops_per_s, units_per_cycle)
 from eaves.records import Figure
 from eaves.threads import check_thread_counts, use_threads
 from eaves.timing import TimingPolicy, calibrate, repeat_callable, sample
@@ -97,8 +97,9 @@ def _expected(kernel, reps: int, threads: int) -> int:
 
 
 def candidates(available) -> list:
-    """The two widest native kernels and the widest other path: a native path is not always the fastest."""
-    widest = lambda ks: sorted(ks, key=lambda k: -k.spec.bits)
+    """The two widest native kernels (most MACs per instruction: AMX tiles, then the widest vectors) and the
+    widest other path: a native path is not always the fastest."""
+    widest = lambda ks: sorted(ks, key=lambda k: -k.spec.macs_per_instruction)
     return widest([k for k in available if k.native])[:2] + widest([k for k in available if not k.native])[:1]
 
 
@@ -121,6 +122,7 @@ class PeakRun:
     threads: int
     timing: Any  # eaves.timing.Timing
     alternatives: dict[str, float]  # kernel name -> ops/s at 1 thread, for every kernel tried
+    unavailable: dict[str, str] | None = None  # kernel name -> why this host cannot run it (AMX refused)
 
     @property
     def rates(self) -> tuple[float, ...]:
@@ -130,17 +132,34 @@ class PeakRun:
 def run_peak(host, dtype: str, thread_counts: Sequence[int], policy: TimingPolicy,
              progress: Progress = None) -> list[PeakRun]:
     """Time the fastest verified kernel of one dtype at each thread count (none if the host has no path)."""
-    from eaves.kernels.compute import kernels_for
+    from eaves.kernels.compute import kernels_for, unavailable_reasons
 
     available = kernels_for(host.features, platform.machine(), dtype)
     if not available:
         return []
     kernel, alternatives = _choose(candidates(available), policy, progress)
+    missing = unavailable_reasons(host.features, platform.machine(), dtype) or None
     runs = []
     for n in thread_counts:
         _say(progress, f"compute: {dtype} multiply-add peak, {n} thread(s)")
-        runs.append(PeakRun(dtype, kernel, n, _peak_timing(kernel, n, policy), alternatives))
+        runs.append(PeakRun(dtype, kernel, n, _peak_timing(kernel, n, policy), alternatives, missing))
     return runs
+
+
+def _bound_terms(host, kernel, ops_per_s_one_core: float, clock_hz: float) -> tuple[int, int, float, dict]:
+    """Lanes, units, measured units (or MACs) per cycle, and extra bound facts of one kernel's bound.
+
+    A vector kernel: lanes of the register, units inferred. An AMX kernel: `lanes` is the tile unit's
+    MACs per cycle per core, inferred from the measurement and capped (MAX_TILE_MACS_PER_CYCLE), 1 unit.
+    """
+    if kernel.spec.is_tile:
+        macs = infer_tile_macs_per_cycle(ops_per_s_one_core, clock_hz, kernel.dtype, kernel.name)
+        return macs, 1, ops_per_s_one_core / clock_hz / 2, {
+            "lanes_are": "tile unit MACs per cycle per core (inferred)", "tile_macs_per_instruction":
+            kernel.spec.macs_per_instruction, "tile_macs_per_cycle_max": MAX_TILE_MACS_PER_CYCLE[kernel.dtype]}
+    lanes = lanes_of(host.vector_bits or kernel.spec.bits, kernel.math_bits)
+    return (lanes, infer_madd_units(ops_per_s_one_core, clock_hz, lanes, kernel.name),
+            units_per_cycle(ops_per_s_one_core, clock_hz, lanes), {})
 
 
 def peak_figures(host, runs: Sequence[PeakRun], clock_hz: float) -> list[Figure]:
@@ -152,26 +171,29 @@ def peak_figures(host, runs: Sequence[PeakRun], clock_hz: float) -> list[Figure]
     """
     from eaves.kernels.compute import block_instructions
 
-    figures, units = [], None
+    figures, terms = [], None
     for run in sorted(runs, key=lambda r: r.threads):
         k, n = run.kernel, run.threads
         cores = min(n, host.physical_cores or n)
-        lanes = lanes_of(host.vector_bits or k.spec.bits, k.math_bits)
-        if units is None:
-            ratio = units_per_cycle(max(run.rates) / cores, clock_hz, lanes)
-            units = infer_madd_units(max(run.rates) / cores, clock_hz, lanes, k.name)
-        bound = Bound(theoretical_ops_per_s(cores, clock_hz, lanes, units), cores, clock_hz, lanes, units)
+        if terms is None:
+            terms = _bound_terms(host, k, max(run.rates) / cores, clock_hz)
+        lanes, units, ratio, more = terms
+        label = "MACs per cycle (tile unit)" if k.spec.is_tile else "lanes"
+        bound = Bound(theoretical_ops_per_s(cores, clock_hz, lanes, units), cores, clock_hz, lanes, units,
+                      lanes_label=label)
         check_below(k.name, max(run.rates), bound)
+        why = "; ".join(f"{name} unavailable: {reason}" for name, reason in (run.unavailable or {}).items())
         figures.append(Figure(
             "compute", "madd-peak", run.dtype, n, "ops_per_s", run.rates, run.timing.repetitions,
-            run.timing.min_seconds, variant=k.variant,
+            run.timing.min_seconds, variant=k.variant + (f" ({why})" if why else ""),
             extra={"kernel": k.name, "vector_bits": k.spec.bits, "accumulators": k.spec.accumulators,
                    "instruction": ", ".join(block_instructions(k.spec)) or "unknown",
                    "native": k.native, "theoretical_ops_per_s": bound.ops_per_s,
                    "bound": {"cores": cores, "clock_hz": clock_hz, "lanes": lanes, "madd_units": units,
                              "madd_units_inferred": True,
-                             "units_per_cycle_measured": round(ratio, 3), "tolerance": TOLERANCE},
-                   "macs_per_rep_per_thread": k.macs_per_rep, "alternatives_1_thread": run.alternatives}))
+                             "units_per_cycle_measured": round(ratio, 3), "tolerance": TOLERANCE, **more},
+                   "macs_per_rep_per_thread": k.macs_per_rep, "alternatives_1_thread": run.alternatives,
+                   **({"unavailable": run.unavailable} if run.unavailable else {})}))
     return figures
 
 

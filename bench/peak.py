@@ -9,6 +9,10 @@ from eaves.errors import BrokenKernelError
 
 TOLERANCE = 0.05  # a measured rate may exceed the bound by this fraction (clock noise) before it is refused
 MAX_MADD_UNITS = 4  # more vector multiply-add pipes per core than any CPU we know of has (from memory)
+# Most multiply-adds per cycle per core of an AMX tile unit (from memory: Intel describes the Sapphire Rapids
+# tile unit as 1024 bf16 / 2048 int8 operations per cycle per core, i.e. one 16x16x32 bf16 or 16x16x64 int8
+# tile product every 16 cycles; 1 MAC = 2 operations). A tile rate above this is a broken kernel.
+MAX_TILE_MACS_PER_CYCLE = {"bf16": 512, "int8": 1024}
 
 
 def theoretical_ops_per_s(cores: int, clock_hz: float, lanes: int, madd_units: int, ops_per_madd: int = 2) -> float:
@@ -31,6 +35,7 @@ class Bound:
     lanes: int
     madd_units: int
     units_inferred: bool = True
+    lanes_label: str = "lanes"  # what `lanes` counts: vector lanes, or a tile unit's MACs per cycle
 
 
 def units_per_cycle(ops_per_s_one_core: float, clock_hz: float, lanes: int) -> float:
@@ -53,10 +58,24 @@ def infer_madd_units(ops_per_s_one_core: float, clock_hz: float, lanes: int, nam
     return units
 
 
+def infer_tile_macs_per_cycle(ops_per_s_one_core: float, clock_hz: float, dtype: str, name: str) -> int:
+    """A tile unit's MACs per cycle per core that explain a measurement: the power of two at or above it.
+
+    As with vector units, a ratio within TOLERANCE above a power of two rounds down to it, and load
+    from other processes only lowers a ratio; capped by MAX_TILE_MACS_PER_CYCLE (more is a broken kernel).
+    """
+    per_cycle = ops_per_s_one_core / clock_hz / 2
+    cap = MAX_TILE_MACS_PER_CYCLE[dtype]
+    if per_cycle > cap * (1 + TOLERANCE):
+        raise BrokenKernelError(f"compute: kernel {name} does {per_cycle:.0f} {dtype} multiply-adds per cycle per "
+                                f"core, more than a tile unit's {cap}; a broken kernel, not a record")
+    return min(cap, 2 ** max(0, math.ceil(math.log2(max(per_cycle, 1.0) / (1 + TOLERANCE)))))
+
+
 def check_below(name: str, measured_ops_per_s: float, bound: Bound, tolerance: float = TOLERANCE) -> None:
     """Raise BrokenKernelError naming the kernel when a rate exceeds the bound by more than `tolerance`."""
     if measured_ops_per_s > bound.ops_per_s * (1 + tolerance):
         raise BrokenKernelError(
             f"compute: kernel {name} measured {measured_ops_per_s:.4g} op/s, above the theoretical bound "
             f"{bound.ops_per_s:.4g} op/s (+{tolerance:.0%}) = {bound.cores} cores x {bound.clock_hz:.4g} Hz x "
-            f"{bound.lanes} lanes x {bound.madd_units} units x 2; a broken kernel, not a record")
+            f"{bound.lanes} {bound.lanes_label} x {bound.madd_units} units x 2; a broken kernel, not a record")

@@ -4,14 +4,17 @@ Each peak kernel runs `accumulators` independent register-resident vector chains
 parallel region (one chain step = one vector multiply-add instruction). The vector code is
 written as LLVM IR through a numba `@intrinsic`, which sidesteps the loop vectoriser and its
 256-bit preference on AVX-512 hosts, and reaches instructions numba cannot express (half
-precision, bf16 and 8/16-bit integer dot products). Every call returns an int64 checksum
-the caller verifies against a closed form (float kernels) or a numpy int32 simulation
-(integer kernels), so no work can be dropped by the compiler.
+precision, bf16 and 8/16-bit integer dot products) and the AMX tile unit. Every call returns
+an int64 checksum the caller verifies against a closed form (float kernels) or a numpy
+simulation (integer and tile kernels), so no work can be dropped by the compiler.
 """
 
 from __future__ import annotations
 
+import ctypes
 import functools
+import os
+import platform
 import re
 from dataclasses import dataclass
 
@@ -30,7 +33,12 @@ CHAIN_BLOCKS = 256  # clock-chain blocks per repetition
 INT8_PATTERN = 0x04030201  # unsigned bytes 1, 2, 3, 4 of the int8 kernel's fixed operand
 INT16_PATTERN = 0x00030002  # signed halves 2, 3 of the int16 kernel's fixed operand
 
-I32, I64 = ir.IntType(32), ir.IntType(64)
+I8, I32, I64 = ir.IntType(8), ir.IntType(32), ir.IntType(64)
+# AMX palette 1 tiles: at most 16 rows of 64 bytes each (Intel's instruction set reference, from memory).
+# A tdp* instruction multiplies a 16 x 64-byte A tile by a 16 x 64-byte B tile into a 16 x 16 tile of
+# 32-bit sums: M = 16 rows, N = 64 / 4 = 16 columns, K = 64 / element bytes (32 bf16 or 64 int8).
+TILE_ROWS, TILE_COLSB = 16, 64
+AMX_SEED = 20240611  # fixed generator seed of the tiles' operand data
 
 
 class _BFloat(ir.Type):
@@ -53,11 +61,15 @@ ELEM = {"f64": ir.DoubleType(), "f32": ir.FloatType(), "f16": ir.HalfType()}
 class BlockSpec:
     """What one block call computes: `accumulators` chains of `bits`-wide vectors, STEPS steps each."""
 
-    kind: str  # "fma" | "bf16dot" | "i8dot" | "i16dot"
+    kind: str  # "fma" | "bf16dot" | "i8dot" | "i16dot" | "amx_bf16" | "amx_i8"
     elem: str  # accumulator element: "f64" "f32" "f16" or "i32"
-    bits: int  # vector register width
-    accumulators: int
+    bits: int  # vector register width (AMX: the bits of one tile row)
+    accumulators: int  # accumulator registers (AMX: C tiles)
     intrinsic: str | None = None  # LLVM target intrinsic, None: portable vector IR
+
+    @property
+    def is_tile(self) -> bool:
+        return self.kind.startswith("amx")
 
     @property
     def acc_lanes(self) -> int:
@@ -65,7 +77,9 @@ class BlockSpec:
 
     @property
     def macs_per_instruction(self) -> int:
-        """Multiply-adds one chain step does (per vector instruction)."""
+        """Multiply-adds one chain step does (per vector or tile instruction)."""
+        if self.is_tile:  # M x N x K of one tile product (see TILE_ROWS)
+            return TILE_ROWS * (TILE_COLSB // 4) * (TILE_COLSB // (2 if self.kind == "amx_bf16" else 1))
         per_lane = {"fma": 1, "bf16dot": 2, "i16dot": 2, "i8dot": 4}[self.kind]
         return self.acc_lanes * per_lane
 
@@ -136,31 +150,45 @@ def _step_fn(builder, spec: BlockSpec, m, c):
     return vec, lambda acc: _portable_dot(builder, acc, av, group, signed_a=(group == 2))
 
 
-def emit_block(builder, spec: BlockSpec, m, c, seed):
-    """IR for one block: every accumulator starts at `seed`, runs STEPS steps; returns their i64 sum."""
-    vec, step = _step_fn(builder, spec, m, c)
-    is_int = spec.elem == "i32"
-    start = _splat(builder, builder.fptosi(seed, I32) if is_int else
-                   (seed if spec.elem == "f64" else builder.fptrunc(seed, vec.element)), vec)
+def _open_loop(builder, name: str):
+    """Start a loop of STEPS iterations: its counter (a phi) and the block before it."""
     pre = builder.block
-    loop = builder.append_basic_block("peak.loop")
-    done = builder.append_basic_block("peak.done")
+    loop = builder.append_basic_block(f"{name}.loop")
     builder.branch(loop)
     builder.position_at_end(loop)
     i = builder.phi(I64)
     i.add_incoming(ir.Constant(I64, 0), pre)
+    return i, pre
+
+
+def _close_loop(builder, i, name: str) -> None:
+    """End the loop `_open_loop` started; the builder continues after it."""
+    loop = builder.block
+    done = builder.append_basic_block(f"{name}.done")
+    nxt = builder.add(i, ir.Constant(I64, 1))
+    i.add_incoming(nxt, loop)
+    builder.cbranch(builder.icmp_unsigned("<", nxt, ir.Constant(I64, STEPS)), loop, done)
+    builder.position_at_end(done)
+
+
+def emit_block(builder, spec: BlockSpec, m, c, seed):
+    """IR for one block: every accumulator starts at `seed`, runs STEPS steps; returns their i64 sum."""
+    if spec.is_tile:
+        return emit_tile_block(builder, spec, seed)
+    vec, step = _step_fn(builder, spec, m, c)
+    is_int = spec.elem == "i32"
+    start = _splat(builder, builder.fptosi(seed, I32) if is_int else
+                   (seed if spec.elem == "f64" else builder.fptrunc(seed, vec.element)), vec)
+    i, pre = _open_loop(builder, "peak")
     accs = []
     for _ in range(spec.accumulators):
         p = builder.phi(vec)
         p.add_incoming(start, pre)
         accs.append(p)
     new = [step(p) for p in accs]
-    nxt = builder.add(i, ir.Constant(I64, 1))
     for p, n in zip(accs, new):
-        p.add_incoming(n, loop)
-    i.add_incoming(nxt, loop)
-    builder.cbranch(builder.icmp_unsigned("<", nxt, ir.Constant(I64, STEPS)), loop, done)
-    builder.position_at_end(done)
+        p.add_incoming(n, builder.block)
+    _close_loop(builder, i, "peak")
     total = ir.Constant(I64, 0)
     wide = ir.VectorType(I64 if is_int else ir.DoubleType(), vec.count)
     for n in new:
@@ -169,6 +197,150 @@ def emit_block(builder, spec: BlockSpec, m, c, seed):
             x = builder.extract_element(w, ir.Constant(I32, k))
             total = builder.add(total, x if is_int else builder.fptosi(x, I64))
     return total
+
+
+# ---------------------------------------------------------------- AMX tiles: operands in tile registers
+
+
+def tile_pairs(accumulators: int) -> list[tuple[int, int]]:
+    """(A, B) operand tiles of each C tile: 4 C tiles use 2 A x 2 B, other counts share one A and one B."""
+    if accumulators == 4:
+        return [(0, 0), (0, 1), (1, 0), (1, 1)]
+    return [(0, 0)] * accumulators
+
+
+def tile_counts(accumulators: int) -> tuple[int, int]:
+    pairs = tile_pairs(accumulators)
+    return 1 + max(a for a, _ in pairs), 1 + max(b for _, b in pairs)
+
+
+@functools.lru_cache(maxsize=None)
+def tile_operands(spec: BlockSpec) -> np.ndarray:
+    """The A tiles then the B tiles, each 16 rows of 64 bytes: small integers, so every sum is exact.
+
+    bf16 values in -3..3 (exact in bf16; fp32 sums stay below 2**24); int8: A unsigned 0..127,
+    B signed -64..63 (int32 sums stay below 2**31 over a block).
+    """
+    n_a, n_b = tile_counts(spec.accumulators)
+    rng = np.random.default_rng(AMX_SEED)
+    shape = (n_a + n_b, TILE_ROWS, TILE_COLSB)
+    if spec.kind == "amx_bf16":
+        v = rng.integers(-3, 4, (n_a + n_b, TILE_ROWS, TILE_COLSB // 2)).astype(np.float32)
+        return (v.view(np.uint32) >> 16).astype(np.uint16).view(np.uint8).reshape(shape)
+    a = rng.integers(0, 128, (n_a, TILE_ROWS, TILE_COLSB)).astype(np.uint8)
+    b = rng.integers(-64, 64, (n_b, TILE_ROWS, TILE_COLSB)).astype(np.int8).view(np.uint8)
+    return np.concatenate([a, b])
+
+
+def _tile_config() -> bytearray:
+    """ldtilecfg's 64 bytes: palette 1, then colsb (u16) of tiles 0..15 at 16, rows (u8) at 48."""
+    cfg = bytearray(64)
+    cfg[0] = 1
+    for t in range(8):
+        cfg[16 + 2 * t:18 + 2 * t] = TILE_COLSB.to_bytes(2, "little")
+        cfg[48 + t] = TILE_ROWS
+    return cfg
+
+
+def emit_tile_block(builder, spec: BlockSpec, seed):
+    """IR for one AMX block: C tiles start at `seed`, A and B tiles load once, STEPS rounds of one tdp per C.
+
+    Tiles 0..accumulators-1 are C, then A, then B. The C tiles are stored at the end and summed to an i64.
+    """
+    module = builder.module
+    void, ptr = ir.VoidType(), ir.PointerType()
+    n_c = spec.accumulators
+    n_a, n_b = tile_counts(n_c)
+    if n_c + n_a + n_b > 8:
+        raise ValueError(f"AMX block: {n_c} C + {n_a} A + {n_b} B tiles, only 8 exist")
+    elem = ir.FloatType() if spec.elem == "f32" else I32
+    row = ir.VectorType(elem, TILE_COLSB // 4)
+    data = tile_operands(spec)
+    blob = ir.ArrayType(I8, data.size)
+    operands = ir.GlobalVariable(module, blob, module.get_unique_name("amx.operands"))
+    operands.global_constant, operands.linkage, operands.align = True, "internal", 64
+    operands.initializer = ir.Constant(blob, bytearray(data.tobytes()))
+    cfg_type = ir.ArrayType(I8, 64)
+    c_type = ir.ArrayType(row, TILE_ROWS * n_c)
+    with builder.goto_entry_block():
+        cfg = builder.alloca(cfg_type, name="amx.cfg")
+        c_mem = builder.alloca(c_type, name="amx.c")
+    cfg.align = c_mem.align = 64
+    ldtilecfg = _declare(module, "llvm.x86.ldtilecfg", void, [ptr])
+    load = _declare(module, "llvm.x86.tileloadd64", void, [I8, ptr, I64])
+    store = _declare(module, "llvm.x86.tilestored64", void, [I8, ptr, I64])
+    tdp = _declare(module, spec.intrinsic, void, [I8, I8, I8])
+    release = _declare(module, "llvm.x86.tilerelease", void, [])
+    stride = ir.Constant(I64, TILE_COLSB)
+
+    def at(base, byte_offset):
+        return builder.gep(builder.bitcast(base, I8.as_pointer()), [ir.Constant(I64, byte_offset)])
+
+    builder.store(ir.Constant(cfg_type, _tile_config()), cfg)
+    builder.call(ldtilecfg, [builder.bitcast(cfg, ptr)])
+    start = _splat(builder, builder.fptosi(seed, I32) if spec.elem == "i32" else builder.fptrunc(seed, elem), row)
+    for r in range(TILE_ROWS):
+        builder.store(start, builder.gep(c_mem, [ir.Constant(I32, 0), ir.Constant(I32, r)]))
+    for t in range(n_c):  # every C tile starts from the same seed rows
+        builder.call(load, [ir.Constant(I8, t), builder.bitcast(c_mem, ptr), stride])
+    for t in range(n_a + n_b):
+        builder.call(load, [ir.Constant(I8, n_c + t), builder.bitcast(at(operands, t * TILE_ROWS * TILE_COLSB), ptr),
+                            stride])
+    i, _ = _open_loop(builder, "amx")
+    for c, (a, b) in enumerate(tile_pairs(n_c)):
+        builder.call(tdp, [ir.Constant(I8, c), ir.Constant(I8, n_c + a), ir.Constant(I8, n_c + n_a + b)])
+    _close_loop(builder, i, "amx")
+    for t in range(n_c):
+        builder.call(store, [ir.Constant(I8, t), builder.bitcast(at(c_mem, t * TILE_ROWS * TILE_COLSB), ptr), stride])
+    builder.call(release, [])  # the thread's tile state goes back to init: no 8 KiB saved per context switch
+    wide = ir.VectorType(I64, row.count)
+    acc = ir.Constant(wide, None)
+    for r in range(TILE_ROWS * n_c):
+        v = builder.load(builder.gep(c_mem, [ir.Constant(I32, 0), ir.Constant(I32, r)]))
+        acc = builder.add(acc, builder.sext(v, wide) if spec.elem == "i32" else builder.fptosi(v, wide))
+    total = ir.Constant(I64, 0)
+    for k in range(row.count):
+        total = builder.add(total, builder.extract_element(acc, ir.Constant(I32, k)))
+    return total
+
+
+@dataclass(frozen=True)
+class AmxAccess:
+    """Whether this process may use AMX tile data, and why not."""
+
+    granted: bool
+    reason: str
+
+
+ARCH_REQ_XCOMP_PERM, XFEATURE_XTILEDATA = 0x1023, 18  # Linux asm/prctl.h
+SYS_ARCH_PRCTL = 158  # x86_64 system call number (Linux unistd_64.h)
+
+
+def _libc_syscall(*args) -> tuple[int, int]:
+    libc = ctypes.CDLL(None, use_errno=True)
+    libc.syscall.restype = ctypes.c_long
+    rc = libc.syscall(*[ctypes.c_long(a) for a in args])
+    return rc, ctypes.get_errno()
+
+
+def request_amx(syscall=None, system: str | None = None, machine: str | None = None) -> AmxAccess:
+    """Ask Linux for AMX tile data (arch_prctl ARCH_REQ_XCOMP_PERM); without it the first tile op faults."""
+    system, machine = system or platform.system(), machine or platform.machine()
+    if (system, machine) != ("Linux", "x86_64"):
+        return AmxAccess(False, f"AMX permission is only requested on Linux x86_64, not {system} {machine}")
+    call = syscall or _libc_syscall
+    rc, err = call(SYS_ARCH_PRCTL, ARCH_REQ_XCOMP_PERM, XFEATURE_XTILEDATA)
+    if rc != 0:
+        return AmxAccess(False, f"Linux refused AMX tile data: arch_prctl(ARCH_REQ_XCOMP_PERM) failed with "
+                                f"{os.strerror(err) if err else 'an unknown error'} (errno {err}); "
+                                f"Linux 5.16 or newer and an AMX-enabled kernel are needed")
+    return AmxAccess(True, "granted")
+
+
+@functools.lru_cache(maxsize=1)
+def amx_access() -> AmxAccess:
+    """request_amx once per process (the permission holds for all its threads)."""
+    return request_amx()
 
 
 # ---------------------------------------------------------------- block specs and their numba entry points
@@ -208,7 +380,10 @@ def _peak(index, reps, nthreads, m, c):
 @functools.lru_cache(maxsize=None)
 def _entry(index: int):
     """The compiled `_peak` for one block, called directly: the dispatcher would retry int64 typing each call."""
-    m, c = OPERANDS[SPECS[index].kind]
+    spec = SPECS[index]
+    if spec.is_tile and not amx_access().granted:  # a tile instruction would raise SIGILL
+        raise RuntimeError(f"AMX block {index}: {amx_access().reason}")
+    m, c = OPERANDS[spec.kind]
     _peak(index, 1, 1, m, c)  # compile, or load from numba's cache
     sig = next(s for s in _peak.signatures if getattr(s[0], "literal_value", None) == index)
     return _peak.overloads[sig].entry_point
@@ -266,6 +441,8 @@ def _wrap64(x: int) -> int:
 @functools.lru_cache(maxsize=None)
 def block_values(spec: BlockSpec) -> tuple[int, ...]:
     """What one block returns for seeds 1..8: closed form for floats, numpy int32 simulation for integers."""
+    if spec.is_tile:
+        return tile_block_values(spec)
     n = spec.accumulators * spec.acc_lanes
     if spec.kind == "fma":  # fma(acc, 1, 1) adds one per step, exactly
         return tuple(n * (s + STEPS) for s in range(1, 9))
@@ -283,6 +460,41 @@ def block_values(spec: BlockSpec) -> tuple[int, ...]:
     return tuple(n * int(v) for v in acc)
 
 
+def tile_products(spec: BlockSpec) -> np.ndarray:
+    """What each C tile gains per tdp instruction, by numpy: A (16 x K) @ B (K x 16) in the tiles' layout.
+
+    A B tile row k holds, for each of the 16 output columns, the `group` consecutive K entries
+    (2 bf16 or 4 int8) k*group .. k*group+group-1 of that column (the tile unit's pair/quad layout).
+    """
+    data = tile_operands(spec)
+    n_a, _ = tile_counts(spec.accumulators)
+    if spec.kind == "amx_bf16":
+        vals = (data.view(np.uint16).astype(np.uint32) << 16).view(np.float32).astype(np.float64)
+        group = 2
+    else:
+        vals = np.concatenate([data[:n_a].astype(np.int64), data[n_a:].view(np.int8).astype(np.int64)])
+        group = 4
+    a, b = vals[:n_a], vals[n_a:]
+    cols = TILE_COLSB // 4
+    b_logical = b.reshape(len(b), TILE_ROWS, cols, group).transpose(0, 1, 3, 2).reshape(len(b), TILE_ROWS * group, cols)
+    return np.stack([a[i] @ b_logical[j] for i, j in tile_pairs(spec.accumulators)])
+
+
+@functools.lru_cache(maxsize=None)
+def tile_block_values(spec: BlockSpec) -> tuple[int, ...]:
+    """One AMX block's checksum for seeds 1..8: C tiles from the seed, STEPS products added in fp32 / int32."""
+    dtype = np.float32 if spec.kind == "amx_bf16" else np.int32
+    p = tile_products(spec).astype(dtype)
+    out = []
+    for s in range(1, 9):
+        c = np.full(p.shape, s, dtype)
+        with np.errstate(over="ignore"):
+            for _ in range(STEPS):
+                c = c + p
+        out.append(int(c.astype(np.int64).sum()))
+    return tuple(out)
+
+
 def peak_expected(spec: BlockSpec, reps: int, nthreads: int) -> int:
     values = block_values(spec)
     per_thread = sum(values[s] * (reps // 8 + (1 if s < reps % 8 else 0)) for s in range(8))
@@ -294,7 +506,7 @@ def peak_expected(spec: BlockSpec, reps: int, nthreads: int) -> int:
 # The multiply-add operands the float kernels use: fma(acc, M, C) with M = C = 1 (run time values,
 # so the compiler cannot fold them); the integer kernels pass their fixed operand in M.
 OPERANDS = {"fma": (1.0, 1.0), "bf16dot": (1.0, 1.0), "i8dot": (float(INT8_PATTERN), 0.0),
-            "i16dot": (float(INT16_PATTERN), 0.0)}
+            "i16dot": (float(INT16_PATTERN), 0.0), "amx_bf16": (0.0, 0.0), "amx_i8": (0.0, 0.0)}
 
 
 @dataclass(frozen=True)
@@ -332,7 +544,9 @@ class PeakKernel:
         return checksum == peak_expected(self.spec, reps, nthreads)
 
     def available(self, features, arch: str) -> bool:
-        return (self.arch is None or self.arch == arch) and all(f in features for f in self.requires)
+        if not ((self.arch is None or self.arch == arch) and all(f in features for f in self.requires)):
+            return False
+        return not self.spec.is_tile or amx_access().granted
 
 
 def _fp(dtype, elem, bits, accs, requires, arch, label, native=True, math_bits=None):
@@ -383,6 +597,10 @@ REGISTRY: list[PeakKernel] = [
                ("avx512_bf16",), _X86, "bf16 pairs into fp32 (vdpbf16ps)", True, 16),
     *[_fallback(k, "bf16") for k in _F32],
     *[_dot(d, bits, accs, req, label) for d in ("int8", "int16") for bits, accs, req, label in _DOTS],
+    PeakKernel("bf16-amx-4x", "bf16", _spec("amx_bf16", "f32", 8 * TILE_COLSB, 4, "llvm.x86.tdpbf16ps"),
+               ("amx_tile", "amx_bf16"), _X86, "AMX bf16 tiles (tdpbf16ps), bf16 pairs into fp32", True, 16),
+    PeakKernel("int8-amx-4x", "int8", _spec("amx_i8", "i32", 8 * TILE_COLSB, 4, "llvm.x86.tdpbusd"),
+               ("amx_tile", "amx_int8"), _X86, "AMX int8 tiles (tdpbusd), u8 x s8 -> s32", True, 8),
 ]
 DTYPES = ("fp64", "fp32", "fp16", "bf16", "int8", "int16")
 
@@ -393,13 +611,23 @@ def kernels_for(features, arch: str, dtype: str | None = None) -> list[PeakKerne
     return sorted(ks, key=lambda k: not k.native)
 
 
+def unavailable_reasons(features, arch: str, dtype: str | None = None) -> dict[str, str]:
+    """Kernels the CPU has the features for but this process may not run (AMX refused by the OS), and why."""
+    return {k.name: amx_access().reason for k in REGISTRY
+            if k.spec.is_tile and (dtype is None or k.dtype == dtype) and (k.arch is None or k.arch == arch)
+            and all(f in features for f in k.requires) and not amx_access().granted}
+
+
 # ---------------------------------------------------------------- what the compiler emits
 
-_MADD = re.compile(r"^\s*(?:\{vex\}\s*)?(v?f(?:n)?m(?:add|la)\w*|vpdp\w+|vdpbf16ps|vpmadd\w+|pmadd\w+|[su]dot|[su]mlal2?|"
+_MADD = re.compile(r"^\s*(?:\{vex\}\s*)?(v?f(?:n)?m(?:add|la)\w*|vpdp\w+|tdp\w+|vdpbf16ps|vpmadd\w+|pmadd\w+|"
+                   r"[su]dot|[su]mlal2?|"
                    r"mla|bfdot|bfmmla|fmla)\s+([^\n]*)", re.M)
 
 
 def _width(operands: str) -> str:
+    if re.search(r"%?tmm\d", operands):
+        return "tmm/16x64B"
     m = re.search(r"%?([xyz])mm\d+", operands)
     if m:
         return {"x": "xmm/128", "y": "ymm/256", "z": "zmm/512"}[m.group(1)]

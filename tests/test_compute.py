@@ -8,12 +8,13 @@ import time
 import numpy as np
 import pytest
 
-from eaves.compute import (ComputeCeiling, GemmCase, check_dtypes, compute_ceilings, gemm_call, gemm_cases,
+from eaves.compute import (GEMM_PATHS, ComputeCeiling, GemmCase, check_dtypes, compute_ceilings, gemm_call, gemm_cases,
                            measure_clock, measure_compute, measure_gemm, plot_compute)
 from eaves.errors import EXIT_INPUT, BrokenKernelError, InputError
 from eaves.host import collect_host_facts
 from eaves.kernels import compute as K
-from eaves.peak import Bound, check_below, infer_madd_units, lanes_of, theoretical_ops_per_s
+from eaves.peak import (MAX_TILE_MACS_PER_CYCLE, Bound, check_below, infer_madd_units, infer_tile_macs_per_cycle,
+                        lanes_of, theoretical_ops_per_s)
 from eaves.records import Figure
 from eaves.threads import usable_cpus, use_threads
 from eaves.timing import TimingPolicy
@@ -105,11 +106,88 @@ def test_native_kernels_emit_their_instruction(kernel):
     # what LLVM emits for this host: the label must not claim a path the code does not take
     found = " ".join(K.block_instructions(kernel.spec))
     if ARCH == "x86_64":
-        want = {"fma": "vfmadd", "bf16dot": "vdpbf16ps", "i8dot": "vpdpbusd", "i16dot": "vpdpwssd"}[kernel.spec.kind]
-        width = {512: "zmm", 256: "ymm", 128: "xmm"}[kernel.spec.bits]
+        want = {"fma": "vfmadd", "bf16dot": "vdpbf16ps", "i8dot": "vpdpbusd", "i16dot": "vpdpwssd",
+                "amx_bf16": "tdpbf16ps", "amx_i8": "tdpbusd"}[kernel.spec.kind]
+        width = "tmm" if kernel.spec.is_tile else {512: "zmm", 256: "ymm", 128: "xmm"}[kernel.spec.bits]
         assert want in found and width in found
     else:
         assert found
+
+
+# ---------------------------------------------------------------- AMX tiles (no measurement)
+
+TILE_SPECS = [K.SPECS[k.spec_index] for k in K.REGISTRY if k.spec.is_tile]
+
+
+@pytest.mark.parametrize("spec", TILE_SPECS, ids=lambda s: s.kind)
+def test_tile_mac_count_matches_the_tile_shapes(spec):
+    # Intel's instruction set reference (from memory): a tdp* op on 16-row x 64-byte tiles computes
+    # C[16 x 16] += A[16 x K] @ B[K x 16], K = 64 bytes / element size: 32 bf16 or 64 int8.
+    assert spec.macs_per_instruction == {"amx_bf16": 16 * 16 * 32, "amx_i8": 16 * 16 * 64}[spec.kind]
+    # the same count from the numpy model's matrix shapes: M x N x K of each product
+    m, n = K.tile_products(spec).shape[1:]
+    k = K.TILE_COLSB // (2 if spec.kind == "amx_bf16" else 1)
+    assert (m, n) == (K.TILE_ROWS, K.TILE_COLSB // 4) and m * n * k == spec.macs_per_instruction
+
+
+@pytest.mark.parametrize("spec", TILE_SPECS, ids=lambda s: s.kind)
+def test_tile_model_matches_an_elementwise_loop(spec):
+    # the numpy tile model against a plain Python reading of one C element from the raw tile bytes
+    data = K.tile_operands(spec)
+    n_a = K.tile_counts(spec.accumulators)[0]
+    (a, b), group = K.tile_pairs(spec.accumulators)[-1], (2 if spec.kind == "amx_bf16" else 4)
+    want = K.tile_products(spec)[-1]
+    for i, j in ((0, 0), (5, 11), (15, 15)):
+        total = 0.0
+        for kk in range(K.TILE_ROWS):  # B row kk, column j holds `group` consecutive K entries of that column
+            for g in range(group):
+                if group == 2:
+                    x, y = _bf16(data[a, i], kk * 2 + g), _bf16(data[n_a + b, kk], j * 2 + g)
+                else:
+                    x, y = int(data[a, i, kk * 4 + g]), (int(data[n_a + b, kk, j * 4 + g]) ^ 0x80) - 0x80
+                total += x * y
+        assert want[i, j] == total
+
+
+def _bf16(row, index):
+    """The bf16 at `index` of a row of little-endian bytes, by its definition: the top half of an fp32."""
+    bits = (int(row[2 * index]) | int(row[2 * index + 1]) << 8) << 16
+    return float(np.array([bits], np.uint32).view(np.float32)[0])
+
+
+def test_amx_permission_refused_gives_a_reason():
+    # a refused request (the OS's answer, faked) or a host that cannot ask: unavailable, with a readable reason
+    refused = K.request_amx(syscall=lambda *args: (-1, 22), system="Linux", machine="x86_64")
+    assert not refused.granted and "EINVAL" not in refused.reason
+    assert "arch_prctl" in refused.reason and "Invalid argument" in refused.reason and "errno 22" in refused.reason
+    other = K.request_amx(syscall=lambda *args: (0, 0), system="Darwin", machine="arm64")
+    assert not other.granted and "Darwin arm64" in other.reason
+    assert K.request_amx(syscall=lambda *args: (0, 0), system="Linux", machine="x86_64").granted
+
+
+def test_amx_entries_follow_the_permission(monkeypatch):
+    tiles = [k for k in K.REGISTRY if k.spec.is_tile]
+    features = tuple(sorted({f for k in tiles for f in k.requires}))
+    monkeypatch.setattr(K, "amx_access", lambda: K.AmxAccess(False, "refused for the test"))
+    assert not [k for k in K.kernels_for(features, "x86_64") if k.spec.is_tile]
+    assert set(K.unavailable_reasons(features, "x86_64")) == {k.name for k in tiles}
+    assert K.unavailable_reasons(features, "x86_64", "bf16") == {"bf16-amx-4x": "refused for the test"}
+    assert K.unavailable_reasons((), "x86_64") == {}  # no AMX flags: nothing to explain
+
+
+def test_tile_bound_is_inferred_and_capped():
+    # MACs per cycle per core: 8192-MAC tdpbf16ps every 16 cycles = 512 (from memory, see bench/peak.py)
+    clock = 3.0e9
+    assert infer_tile_macs_per_cycle(2 * 450 * clock, clock, "bf16", "k") == 512
+    assert infer_tile_macs_per_cycle(2 * 530 * clock, clock, "bf16", "k") == 512  # within the tolerance
+    assert infer_tile_macs_per_cycle(2 * 200 * clock, clock, "bf16", "k") == 256
+    assert infer_tile_macs_per_cycle(2 * 900 * clock, clock, "int8", "k") == MAX_TILE_MACS_PER_CYCLE["int8"]
+    with pytest.raises(BrokenKernelError, match="kernel k"):
+        infer_tile_macs_per_cycle(2 * 600 * clock, clock, "bf16", "k")
+    bound = Bound(theoretical_ops_per_s(1, clock, 512, 1), 1, clock, 512, 1, lanes_label="MACs per cycle (tile unit)")
+    assert bound.ops_per_s == pytest.approx(3.072e12)  # 1 core x 3 GHz x 512 MACs x 2 ops, by hand
+    with pytest.raises(BrokenKernelError, match="512 MACs per cycle"):
+        check_below("bf16-amx-4x", 3.3e12, bound)
 
 
 # ---------------------------------------------------------------- measured relations
@@ -152,6 +230,24 @@ def test_survey_relations_hold():
         assert g.extra.get("blas") and g.shape == ("256x256x256")
     rows = compute_ceilings(figs)
     assert {(r.dtype, r.threads) for r in rows} == {("fp64", 1), ("fp32", 1), ("int8", 1)}
+
+
+@pytest.mark.skipif(not any(k.spec.is_tile for k in AVAILABLE), reason="no AMX tiles usable on this host")
+def test_amx_host_roofs_come_from_the_tiles():
+    # on an AMX host the fastest verified path per dtype is the tile unit, bounded by the tile bound,
+    # while the GEMM rows keep their own (fp32 BLAS) labels
+    figs = measure_compute(HOST, [1], TINY, ["bf16", "int8"], 64 << 20, gemm_sizes=[256])
+    peaks = {f.dtype: f for f in figs if f.suite == "compute"}
+    for dtype, mnemonic in (("bf16", "tdpbf16ps"), ("int8", "tdpbusd")):
+        f = peaks[dtype]
+        assert f.extra["native"] and f.extra["kernel"].endswith("-amx-4x") and mnemonic in f.variant
+        assert f.extra["instruction"].startswith(mnemonic)
+        # faster than every vector kernel tried: a tile product does 128x the MACs of a zmm dot product
+        assert f.extra["alternatives_1_thread"][f.extra["kernel"]] == max(f.extra["alternatives_1_thread"].values())
+        assert f.best <= f.extra["theoretical_ops_per_s"] * (1 + f.extra["bound"]["tolerance"])
+        assert f.extra["bound"]["lanes"] <= f.extra["bound"]["tile_macs_per_cycle_max"]
+    for g in (f for f in figs if f.suite == "gemm"):
+        assert g.extra["path"] == GEMM_PATHS[g.dtype] and "not native" in g.variant and not g.extra["native"]
 
 
 def test_gemm_figure_matches_numpy_matmul():
