@@ -87,12 +87,12 @@ def detect_plateaus(sizes: Sequence[int], bytes_per_s: Sequence[float],
         merged.append(seg)
     levels = list(reported)
     plateaus = []
+    medians = [_median(bytes_per_s[i:j + 1]) for i, j in merged]
     for k, (i, j) in enumerate(merged):
-        level = _median(bytes_per_s[i:j + 1])
-        # the edge: the largest size still within MERGE_RATIO of the plateau
-        edge_index = max((p for p in range(i, j + 1) if bytes_per_s[p] * MERGE_RATIO >= level), default=j)
-        edge = sizes[edge_index]
+        level = medians[k]
         is_last = k == len(merged) - 1
+        edge = sizes[j] if is_last else _crossing(sizes, bytes_per_s, i, merged[k + 1][1],
+                                                  math.sqrt(level * medians[k + 1]))
         name, matched = "L?", None
         if is_last and (dram_after is None or sizes[j] >= dram_after or not levels):
             name = "DRAM"
@@ -106,6 +106,17 @@ def detect_plateaus(sizes: Sequence[int], bytes_per_s: Sequence[float],
         plateaus.append(Plateau(name, i, j, tuple(sizes[i:j + 1]), level,
                                 None if name == "DRAM" else edge, matched))
     return plateaus
+
+
+def _crossing(sizes: Sequence[int], values: Sequence[float], first: int, last: int, target: float) -> int:
+    """Size at which the curve first falls below `target` between points first..last (log-interpolated):
+    a level's capacity is where its bandwidth is half-way (geometrically) to the next level's."""
+    for p in range(first, last):
+        hi, lo = values[p], values[p + 1]
+        if hi >= target > lo:
+            f = math.log(hi / target) / math.log(hi / lo)
+            return int(round(2 ** (math.log2(sizes[p]) + f * math.log2(sizes[p + 1] / sizes[p]))))
+    return sizes[last]
 
 
 def level_of(size: int, plateaus: Sequence[Plateau], sizes: Sequence[int]) -> Optional[str]:

@@ -19,8 +19,9 @@ def staircase(noise=0.03):
 def test_a_staircase_gives_one_plateau_per_level_named_after_the_os_sizes():
     plateaus = detect_plateaus(SIZES, staircase(), REPORTED, dram_after=64 * 2**20)
     assert [p.name for p in plateaus] == ["L1", "L2", "L3", "DRAM"]
-    assert plateaus[0].edge_bytes == 32 * 1024
-    assert plateaus[1].edge_bytes == 2 * 2**20
+    # a step between two sizes is crossed half-way between them (in log size, log bandwidth)
+    assert plateaus[0].edge_bytes == pytest.approx(2**15.5, rel=0.05)
+    assert plateaus[1].edge_bytes == pytest.approx(2**21.5, rel=0.05)
     assert plateaus[-1].edge_bytes is None
     assert plateaus[0].bytes_per_s == pytest.approx(170e9, rel=0.05)
     assert level_of(8192, plateaus, SIZES) == "L1"
