@@ -173,6 +173,8 @@ def test_amx_entries_follow_the_permission(monkeypatch):
     assert set(K.unavailable_reasons(features, "x86_64")) == {k.name for k in tiles}
     assert K.unavailable_reasons(features, "x86_64", "bf16") == {"bf16-amx-4x": "refused for the test"}
     assert K.unavailable_reasons((), "x86_64") == {}  # no AMX flags: nothing to explain
+    with pytest.raises(RuntimeError, match="refused for the test"):  # never a tile instruction without leave
+        K._entry.__wrapped__(tiles[0].spec_index)
 
 
 def test_tile_bound_is_inferred_and_capped():
