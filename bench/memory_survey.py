@@ -14,7 +14,7 @@ import numpy as np
 
 from eaves.budget import MemoryBudget
 from eaves.errors import BrokenKernelError
-from eaves.kernels import MEMORY_KERNELS, MemoryKernel, thread_slices
+from eaves.kernels import MEMORY_KERNELS, PATTERN, MemoryKernel, thread_slices
 from eaves.kernels import memory as mem
 from eaves.kernels.streaming import aligned_empty
 from eaves.levels import CacheCapacity, Plateau, detect_plateaus, level_of, representative
@@ -35,11 +35,12 @@ class MemoryPlan:
     sizes: tuple[int, ...]  # working-set bytes of the sweep, log-spaced
     sweep_threads: tuple[int, ...]  # the sweep runs at each of these (1 and all, by default)
     scaling_threads: tuple[int, ...]  # thread-scaling at DRAM size
-    buffer_bytes: int  # each of the two buffers
+    buffer_bytes: int  # the first buffer; the second holds half as much
     top_bytes: int
-    wanted_top_bytes: int  # 4 x last-level cache; more than top_bytes if the budget cut it
+    wanted_top_bytes: int  # 4 (quick: 2) x last-level cache; more than top_bytes if the budget cut it
     policy: TimingPolicy
     points_per_octave: int
+    numa_nodes: int = 1  # with more than one, buffers are touched again by each thread count
 
 
 @dataclass
@@ -51,25 +52,27 @@ class MemoryResult:
 
 def plan_memory(llc_bytes: Optional[int], thread_counts: Sequence[int], budget: MemoryBudget,
                 quick: bool, policy: Optional[TimingPolicy] = None,
-                top_bytes: Optional[int] = None, points_per_octave: Optional[int] = None) -> MemoryPlan:
-    """Sweep from 4 KiB to 4x the last-level cache, capped by the memory budget."""
-    wanted = top_bytes or 4 * (llc_bytes or 32 * 2**20)
+                top_bytes: Optional[int] = None, points_per_octave: Optional[int] = None,
+                numa_nodes: Optional[int] = None) -> MemoryPlan:
+    """Sweep from 4 KiB to 4x the last-level cache (2x in quick mode), capped by the memory budget."""
+    wanted = top_bytes or (2 if quick else 4) * (llc_bytes or 32 * 2**20)
     wanted = 1 << math.ceil(math.log2(wanted))
     top = wanted
-    while 2 * top > budget.cap_bytes and top > 16 * MIN_SWEEP_BYTES:
+    while 3 * top // 2 > budget.cap_bytes and top > 16 * MIN_SWEEP_BYTES:
         top //= 2
-    budget.refuse_above(2 * top, "the memory sweep")
+    budget.refuse_above(3 * top // 2, "the memory sweep")
     per_octave = points_per_octave or (1 if quick else 2)
     count = int(round(math.log2(top / MIN_SWEEP_BYTES) * per_octave)) + 1
     sizes = sorted({int(MIN_SWEEP_BYTES * 2 ** (k / per_octave)) // 128 * 128 for k in range(count)})
     counts = sorted(set(thread_counts))
     sweep_threads = tuple(sorted({counts[0], counts[-1]}))
     return MemoryPlan(tuple(sizes), sweep_threads, tuple(counts), top, top, wanted,
-                      policy or (TimingPolicy.quick() if quick else TimingPolicy.full()), per_octave)
+                      policy or (TimingPolicy.quick() if quick else TimingPolicy.full()), per_octave,
+                      numa_nodes or 1)
 
 
-def _measure(bound, policy: TimingPolicy, what: str, start: int = 1):
-    timing = sample(bound, policy, start=start)
+def _measure(bound, policy: TimingPolicy, what: str, start: int = 1, warm: bool = True):
+    timing = sample(bound, policy, start=start, warm=warm)
     for got, want in timing.results:
         if not math.isclose(got, want, rel_tol=CHECK_TOLERANCE, abs_tol=1e-6):
             raise BrokenKernelError(f"{what}: checksum {got!r} differs from the expected {want!r}")
@@ -103,18 +106,19 @@ def measure_memory(plan: MemoryPlan, reported: Sequence[CacheCapacity], progress
     result = MemoryResult(figures=sink if sink is not None else [])
     n_top = plan.buffer_bytes // 8
     a = aligned_empty(n_top)
-    b = aligned_empty(n_top)
+    b = aligned_empty(n_top // 2)  # two-array kernels (copy, axpy, gather) split the working set
     policy = plan.policy
     if plan.top_bytes < plan.wanted_top_bytes:
-        result.notes.append(f"the sweep stops at {plan.top_bytes >> 20} MiB, below 4x the last-level cache "
-                            f"({plan.wanted_top_bytes >> 20} MiB): raise --max-memory for a DRAM figure")
+        result.notes.append(f"the sweep stops at {plan.top_bytes >> 20} MiB, below the {plan.wanted_top_bytes >> 20} MiB "
+                            f"it wanted (a multiple of the last-level cache): raise --max-memory for a DRAM figure")
     sweep_kernels = [k for k in MEMORY_KERNELS if k.in_sweep]
     variant_kernels = [k for k in MEMORY_KERNELS if not k.in_sweep]
     for threads in plan.sweep_threads:
         with use_threads(threads):
-            progress(f"first touch of {2 * plan.buffer_bytes >> 20} MiB with {threads} thread(s)")
-            mem.first_touch(a, threads, 0.0)
-            mem.first_touch(b, threads, 0.0)
+            if threads == plan.sweep_threads[0] or plan.numa_nodes > 1:
+                progress(f"first touch of {3 * plan.buffer_bytes >> 21} MiB with {threads} thread(s)")
+                mem.first_touch(a, threads, 0.0)
+                mem.first_touch(b, threads, 0.0)
             curves: dict[str, list[Figure]] = {}
             for kernel in sweep_kernels:
                 curve = curves.setdefault(kernel.name, [])
@@ -123,7 +127,8 @@ def measure_memory(plan: MemoryPlan, reported: Sequence[CacheCapacity], progress
                     elems = size // (8 * kernel.arrays) // 8 * 8
                     progress(f"sweep {kernel.name} {size >> 10} KiB x{threads}")
                     bound = kernel.bind(a, b, elems, threads)
-                    timing = _measure(bound, policy, f"{kernel.name}/{kernel.variant} at {size} B", guess)
+                    timing = _measure(bound, policy, f"{kernel.name}/{kernel.variant} at {size} B", guess,
+                                      warm=i == 0)  # compiled at the first size, pages touched by bind
                     if i + 1 < len(plan.sizes):  # the next size needs about proportionally fewer repetitions
                         guess = max(1, timing.repetitions * size // plan.sizes[i + 1])
                     curve.append(_figure("sweep", kernel, threads, size, timing, elems, policy))
@@ -135,10 +140,16 @@ def measure_memory(plan: MemoryPlan, reported: Sequence[CacheCapacity], progress
             labelled = {id(f): _with_level(f, level_of(f.working_set_bytes, plateaus, plan.sizes))
                         for curve in curves.values() for f in curve}
             result.figures[:] = [labelled.get(id(f), f) for f in result.figures]
-            for curve in curves.values():
-                for p in plateaus:
-                    result.figures.append(_ceiling(curve, p))
+            levels = [p for p in plateaus if p.name != "L?"]
             for p in plateaus:
+                if p.name == "L?":
+                    result.notes.append(
+                        f"x{threads}: a plateau from {p.sizes[0] >> 10} to {p.sizes[-1] >> 10} KiB matches no cache "
+                        f"the OS reports (a transition between levels?); it is not reported as a level")
+            for curve in curves.values():
+                for p in levels:
+                    result.figures.append(_ceiling(curve, p))
+            for p in levels:
                 size = plan.sizes[representative(p)]
                 for kernel in variant_kernels:
                     elems = size // (8 * kernel.arrays) // 8 * 8
@@ -148,13 +159,16 @@ def measure_memory(plan: MemoryPlan, reported: Sequence[CacheCapacity], progress
                     result.figures.append(_figure("memory", kernel, threads, size, timing, elems, policy,
                                                   cache_level=p.name))
                 progress(f"{p.name} gather x{threads}")
-                result.figures.append(_gather(a, b, size, threads, policy, p.name))
-            top = plan.sizes[-1]
+                # DRAM: the smallest size already past every cache (random loads are slow to sample)
+                gather_size = plan.sizes[p.first] if p.name == "DRAM" else size
+                result.figures.append(_gather(a, b, gather_size, threads, policy, p.name))
+            dram = [p for p in levels if p.name == "DRAM"]
+            stride_size = plan.sizes[dram[0].first] if dram else plan.sizes[-1]
             for stride in STRIDES:
                 progress(f"stride {stride} x{threads}")
-                result.figures.append(_strided(a, top, stride, threads, policy))
+                result.figures.append(_strided(a, stride_size, stride, threads, policy))
     one = plan.sweep_threads[0]
-    for p in result.plateaus[one]:
+    for p in (p for p in result.plateaus[one] if p.name != "L?"):
         progress(f"latency {p.name}")
         result.figures.append(_chase(a, plan.sizes[representative(p)], policy, p.name))
     result.figures.extend(_scaling(a, b, plan, progress, result.figures))
@@ -190,12 +204,13 @@ def _ceiling(curve: list[Figure], p: Plateau) -> Figure:
 
 
 def _gather(a, b, size, threads, policy, level) -> Figure:
+    """Random gather: half the working set is data, half a pseudo-random int64 index into it."""
     n = size // 16 // 8 * 8
     data = a[:n]
-    data[:] = np.arange(n, dtype=np.float64) % 4093.0
+    mem.fill_pattern(data, threads, PATTERN)
     index = b[:n].view(np.int64)
-    index[:] = np.random.default_rng(7).permutation(n)
-    want = sum(float(data[index[lo:hi]].sum()) for lo, hi in thread_slices(n, threads))
+    mem.random_indices(index, n, 7, threads)
+    want = mem.pattern_sum_at(index, PATTERN, threads)
 
     def call(r):
         return mem.gather_sum(data, index, r, threads), want * r
@@ -205,13 +220,14 @@ def _gather(a, b, size, threads, policy, level) -> Figure:
                   samples=timing.rates(16 * n), repetitions=timing.repetitions,
                   min_seconds=policy.min_seconds, working_set_bytes=size, cache_level=level,
                   variant="int64 index",
-                  extra={"lines_bytes_per_s_median": 0.0 if not timing.seconds else 64 * n / timing.median + 8 * n / timing.median})
+                  extra={"line_bytes_per_s": list(timing.rates(72 * n)),  # a whole line per random load
+                         "useful_bytes_per_element": 16})
 
 
 def _strided(a, size, stride, threads, policy) -> Figure:
     n = size // 8 // 8 * 8
     x = a[:n]
-    x[:] = 1.0
+    mem.first_touch(x, threads, 1.0)
     visited = sum((hi - lo + stride - 1) // stride for lo, hi in thread_slices(n, threads))
     lines = visited if stride >= mem.LINE_ELEMS else n // mem.LINE_ELEMS
 

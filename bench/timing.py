@@ -25,11 +25,11 @@ class TimingPolicy:
 
     @classmethod
     def quick(cls) -> "TimingPolicy":
-        return cls(min_seconds=0.01, samples=5)
+        return cls(min_seconds=0.005, samples=5)
 
     @classmethod
     def full(cls) -> "TimingPolicy":
-        return cls(min_seconds=0.05, samples=9)
+        return cls(min_seconds=0.02, samples=9)
 
     @classmethod
     def tiny(cls) -> "TimingPolicy":
@@ -100,9 +100,13 @@ def calibrate(call: Callable[[int], Any], policy: TimingPolicy, start: int = 1) 
         spent += seconds
         if reps >= policy.max_repetitions or spent > max(0.25, 25 * policy.min_seconds):
             return reps
+        if seconds > 3 * policy.min_seconds and reps > 1:
+            # the guess overshot (a neighbouring size ran from a faster cache): scale down, once
+            reps = max(1, int(reps * 1.2 * policy.min_seconds / seconds))
+            continue
         if seconds >= policy.min_seconds:
-            if seconds > 20 * policy.min_seconds:
-                return reps  # far longer than any scheduling stall: the work dominates
+            if seconds > 5 * policy.min_seconds:
+                return reps  # longer than any scheduling stall several times over: the work dominates
             other = 2 * reps if reps == 1 else reps // 2
             check = _elapsed(call, other)[0]
             spent += check
@@ -116,14 +120,16 @@ def calibrate(call: Callable[[int], Any], policy: TimingPolicy, start: int = 1) 
 
 
 def sample(call: Callable[[int], Any], policy: TimingPolicy, repetitions: int | None = None,
-           start: int = 1) -> Timing:
+           start: int = 1, warm: bool = True) -> Timing:
     """Time `call(repetitions)` `policy.samples` times; seconds are per repetition.
 
     One untimed call warms up first (JIT compilation or cache loading, page faults, caches),
-    then the count is calibrated unless `repetitions` is given. The result of every timed
-    call is kept so the caller can verify its checksum.
+    then the count is calibrated unless `repetitions` is given; `warm=False` skips the warm-up
+    for a call already compiled and on touched pages (the calibration's calls still fill the
+    caches). The result of every timed call is kept so the caller can verify its checksum.
     """
-    call(1)
+    if warm:
+        call(1)
     reps = repetitions or calibrate(call, policy, start)
     seconds, results = [], []
     for _ in range(policy.samples):

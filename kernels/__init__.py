@@ -65,10 +65,13 @@ class MemoryKernel:
         return self.read_bytes + self.write_bytes
 
 
+PATTERN = 4093  # copy sources hold i % PATTERN: every element differs from its neighbours
+
+
 def _bind_read(kernel):
     def bind(a, b, n, threads):
         x = a[:n]
-        x[:] = 1.0
+        mem.first_touch(x, threads, 1.0)
         return Bound(lambda r: kernel(x, r, threads), lambda r: float(r * n))
     return bind
 
@@ -86,26 +89,26 @@ def _bind_fill(kernel):
         def expected(r):
             return float(sum(2 * (1.0 + r - 1) for _ in slices))
 
-        return Bound(call, expected, lambda: bool(np.all(x == 1.0 + last[0] - 1)))
+        return Bound(call, expected, lambda: mem.count_not(x, 1.0 + last[0] - 1, threads) == 0)
     return bind
 
 
 def _bind_copy(kernel):
     def bind(a, b, n, threads):
         src, dst = a[:n], b[:n]
-        src[:] = np.arange(n, dtype=np.float64) % 4093.0
-        dst[:] = -1.0
+        mem.fill_pattern(src, threads, PATTERN)
+        mem.first_touch(dst, threads, -1.0)
         want = float(sum(src[lo] + src[hi - 1] for lo, hi in thread_slices(n, threads)))
         return Bound(lambda r: kernel(dst, src, r, threads), lambda r: want,
-                     lambda: bool(np.array_equal(dst, src)))
+                     lambda: mem.mismatches(dst, src, threads) == 0)
     return bind
 
 
 def _bind_axpy(kernel):
     def bind(a, b, n, threads):
         x, y = a[:n], b[:n]
-        x[:] = 1.0
-        y[:] = 0.0
+        mem.first_touch(x, threads, 1.0)
+        mem.first_touch(y, threads, 0.0)
         done = [0]
         firsts = len(thread_slices(n, threads))
 
@@ -114,7 +117,7 @@ def _bind_axpy(kernel):
             return float(firsts * done[0])  # y == repetitions so far, read at each slice start
 
         return Bound(lambda r: kernel(y, x, 1.0, r, threads), expected,
-                     lambda: bool(np.all(y == float(done[0]))))
+                     lambda: mem.count_not(y, float(done[0]), threads) == 0)
     return bind
 
 

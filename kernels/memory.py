@@ -145,3 +145,74 @@ def first_touch(a, nthreads, value):
         x = a[lo:hi]
         for i in range(x.shape[0]):
             x[i] = value
+
+
+@njit(parallel=True, cache=True)
+def fill_pattern(a, nthreads, modulus):
+    """a[i] = i % modulus (an integer modulus), in place and in parallel (no temporary the size of
+    the buffer)."""
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, a.shape[0])
+        for i in range(lo, hi):
+            a[i] = float(i % modulus)
+
+
+@njit(parallel=True, cache=True)
+def mismatches(x, y, nthreads):
+    """How many positions differ between x and y (a full check of a copy, in parallel)."""
+    partial = np.zeros(nthreads, dtype=np.int64)
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, x.shape[0])
+        c = 0
+        for i in range(lo, hi):
+            if x[i] != y[i]:
+                c += 1
+        partial[t] = c
+    return partial.sum()
+
+
+@njit(parallel=True, cache=True)
+def count_not(x, value, nthreads):
+    """How many elements of x differ from value."""
+    partial = np.zeros(nthreads, dtype=np.int64)
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, x.shape[0])
+        c = 0
+        for i in range(lo, hi):
+            if x[i] != value:
+                c += 1
+        partial[t] = c
+    return partial.sum()
+
+
+@njit(inline="always")
+def _mix(z):
+    # splitmix64's finaliser (Steele, Lea and Flood, "Fast splittable pseudorandom number
+    # generators", OOPSLA 2014): a counter-based hash, so every thread fills its part alone
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return z ^ (z >> np.uint64(31))
+
+
+@njit(parallel=True, cache=True)
+def random_indices(index, n, seed, nthreads):
+    """index[i] = a pseudo-random position in [0, n): a pattern no prefetcher can follow."""
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, index.shape[0])
+        for i in range(lo, hi):
+            index[i] = np.int64(_mix(np.uint64(i) + np.uint64(seed) * np.uint64(0x9E3779B97F4A7C15))
+                                % np.uint64(n))
+
+
+@njit(parallel=True, cache=True)
+def pattern_sum_at(index, modulus, nthreads):
+    """Sum of (index[i] % modulus): what gathering from fill_pattern data must return, computed
+    from the indices alone (not through the loads being verified)."""
+    partial = np.zeros(nthreads)
+    for t in prange(nthreads):
+        lo, hi = _slice(t, nthreads, index.shape[0])
+        s = 0.0
+        for i in range(lo, hi):
+            s += index[i] % modulus
+        partial[t] = s
+    return partial.sum()

@@ -38,7 +38,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--charts", metavar="DIR", default="results", help="folder for the charts (default results)")
     p.add_argument("--sweep-top", metavar="SIZE", help="largest working set (default 4x the last-level cache)")
     p.add_argument("--samples", metavar="N", help="samples per figure (default 5 quick, 9 full)")
-    p.add_argument("--sample-seconds", metavar="S", help="minimum seconds per sample (default 0.01 quick, 0.05 full)")
+    p.add_argument("--sample-seconds", metavar="S", help="minimum seconds per sample (default 0.005 quick, 0.02 full)")
     p.add_argument("--check", action="store_true", help="after saving, compare the run with this host's baseline "
                    "(median of its last 5 complete runs); exit 1 if a ceiling regressed beyond noise")
 
@@ -56,7 +56,8 @@ def _options(args: argparse.Namespace, host) -> SurveyOptions:
     llc = host.last_level_cache()
     top = parse_size(args.sweep_top, "--sweep-top") if args.sweep_top else None
     policy = _policy(args)
-    plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, policy=policy, top_bytes=top)
+    plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, policy=policy, top_bytes=top,
+                       numa_nodes=host.numa_nodes)
     return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts)
 
 
@@ -157,7 +158,7 @@ def run(args: argparse.Namespace) -> int:
     for note in outcome.notes:
         console.print(f"[yellow]note:[/] {note}")
     seconds = (record.ended_at - record.started_at).total_seconds()
-    buffers = 2 * options.memory_plan.buffer_bytes if "memory" in options.parts else 0
+    buffers = 3 * options.memory_plan.buffer_bytes // 2 if "memory" in options.parts else 0
     console.print(f"measured in {seconds:.1f} s; memory buffers {format_bytes(buffers)} "
                   f"(cap {format_bytes(options.budget.cap_bytes)})")
     if args.json:
