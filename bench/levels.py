@@ -129,7 +129,7 @@ def level_of(size: int, plateaus: Sequence[Plateau], sizes: Sequence[int]) -> Op
 
 def representative(p: Plateau) -> int:
     """Index of the point that stands for a plateau: its middle, away from the transitions; for
-    DRAM the second point (already past every cache, and cheaper to measure than the largest)."""
+    DRAM the second largest (far past every cache, half the cost of the largest to measure)."""
     if p.name == "DRAM":
-        return min(p.first + 1, p.last)
+        return max(p.first, p.last - 1)
     return (p.first + p.last) // 2

@@ -193,11 +193,13 @@ def _with_level(f: Figure, level: Optional[str]) -> Figure:
 
 
 def _ceiling(curve: list[Figure], p: Plateau) -> Figure:
-    """The level's figure: the point of median bandwidth among the plateau's inner points."""
+    """The level's figure: for a cache the point of median bandwidth among the plateau's inner
+    points; for DRAM its representative point, where the variants and the latency are measured too
+    (a DRAM plateau often begins with a point still helped by the last cache)."""
     from dataclasses import replace
 
     inner = curve[p.first + 1:p.last] if p.last - p.first >= 3 else curve[p.first:p.last + 1]
-    chosen = sorted(inner, key=lambda f: f.median)[len(inner) // 2]
+    chosen = curve[representative(p)] if p.name == "DRAM" else sorted(inner, key=lambda f: f.median)[len(inner) // 2]
     return replace(chosen, suite="memory", cache_level=p.name,
                    extra={"plateau_sizes": list(p.sizes), "edge_bytes": p.edge_bytes,
                           "reported_bytes": p.reported_bytes})
