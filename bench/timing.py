@@ -29,7 +29,7 @@ class TimingPolicy:
 
     @classmethod
     def full(cls) -> "TimingPolicy":
-        return cls(min_seconds=0.02, samples=9)
+        return cls(min_seconds=0.01, samples=9)
 
     @classmethod
     def tiny(cls) -> "TimingPolicy":

@@ -38,7 +38,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--charts", metavar="DIR", default="results", help="folder for the charts (default results)")
     p.add_argument("--sweep-top", metavar="SIZE", help="largest working set (default 4x the last-level cache)")
     p.add_argument("--samples", metavar="N", help="samples per figure (default 5 quick, 9 full)")
-    p.add_argument("--sample-seconds", metavar="S", help="minimum seconds per sample (default 0.005 quick, 0.02 full)")
+    p.add_argument("--sample-seconds", metavar="S", help="minimum seconds per sample (default 0.005 quick, 0.01 full)")
     p.add_argument("--check", action="store_true", help="after saving, compare the run with this host's baseline "
                    "(median of its last 5 complete runs); exit 1 if a ceiling regressed beyond noise")
 
