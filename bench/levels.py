@@ -13,6 +13,9 @@ from typing import Optional, Sequence
 
 MERGE_RATIO = 1.15  # plateaus closer than 15% in bandwidth are one level
 PENALTY = 0.02  # per extra segment, in squared log2 units: about a 10% step over 2 points
+# A plateau takes the name of the nearest reported level within 3 octaves (a factor of 8): virtual
+# machines and shared last-level caches often report more than one core can hold.
+MATCH_OCTAVES = 3.0
 
 
 @dataclass(frozen=True)
@@ -98,7 +101,7 @@ def detect_plateaus(sizes: Sequence[int], bytes_per_s: Sequence[float],
             name = "DRAM"
         elif levels:
             nearest = min(levels, key=lambda c: abs(math.log2(edge / c.bytes)))
-            if abs(math.log2(edge / nearest.bytes)) <= 2.0:
+            if abs(math.log2(edge / nearest.bytes)) <= MATCH_OCTAVES:
                 name, matched = nearest.name, nearest.bytes
                 levels = levels[levels.index(nearest) + 1:]
         elif not is_last:

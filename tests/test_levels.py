@@ -38,3 +38,19 @@ def test_a_flat_curve_is_one_level():
 def test_without_os_sizes_levels_are_numbered():
     plateaus = detect_plateaus(SIZES, staircase(), (), dram_after=None)
     assert [p.name for p in plateaus] == ["L1", "L2", "L3", "DRAM"]
+
+
+def test_a_last_level_reported_larger_than_one_core_holds_is_still_named():
+    # a virtual machine reports the whole socket's L3 (here 4.7x what the curve shows); a short
+    # transition between L2 and L3 stays unnamed
+    def bw(s):
+        if s <= 32 * 1024:
+            return 280e9
+        if s <= 1 * 2**20:
+            return 150e9
+        if s <= 2 * 2**20:
+            return 100e9
+        return 40e9 if s <= 64 * 2**20 else 15e9
+    reported = [CacheCapacity("L1", 48 * 1024), CacheCapacity("L2", 2 * 2**20), CacheCapacity("L3", 480 * 2**20)]
+    names = [p.name for p in detect_plateaus(SIZES, [bw(s) for s in SIZES], reported, dram_after=960 * 2**20)]
+    assert names[:2] == ["L1", "L2"] and "L3" in names and names[-1] == "DRAM"
