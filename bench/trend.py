@@ -23,7 +23,7 @@ DEFAULT_WINDOW = 5
 # but `survey --check` and `trend` do not fail on them (back-to-back GEMM runs on a busy 2-core
 # host differed by 11-18 %, measured while writing this).
 MIN_BASELINE_RUNS = 3
-DEFAULT_LAST = 200  # runs shown when no --since is given: a long history stays quick to answer
+DEFAULT_LAST = 100  # runs shown when no --since is given: a long history stays quick to answer
 
 
 @dataclass(frozen=True)
