@@ -49,15 +49,19 @@ def _save(fig, stem: Path) -> list[Path]:
 
 def bandwidth_chart(figures: Sequence[Figure], levels: dict, reported: Sequence[CacheCapacity],
                     stem: Path, title: str) -> list[Path]:
-    """Bandwidth (GB/s, log) against working set (log2) per kernel; detected levels shaded, OS sizes marked."""
+    """Bandwidth (GB/s, log) against working set (log2) per kernel; the levels detected at one thread
+    shaded, OS sizes marked."""
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(9, 4.8), facecolor=PAPER)
     _style(ax)
     sweep = [f for f in figures if f.suite == "sweep"]
     threads = sorted({f.threads for f in sweep})
     top_threads = threads[-1] if threads else 1
-    bands = levels.get(str(top_threads)) or levels.get(top_threads) or []
+    # bands: the levels one thread sees, so they line up with the per-core sizes the OS reports
+    bands = levels.get(str(threads[0])) or levels.get(threads[0]) or [] if threads else []
     for i, p in enumerate(bands):
+        if p["name"] == "L?":  # a transition between levels: left unshaded
+            continue
         ax.axvspan(p["first_bytes"] / 1.19, p["last_bytes"] * 1.19, color=BAND_COLOURS[i % 2], zorder=0, lw=0)
         mid = (p["first_bytes"] * p["last_bytes"]) ** 0.5
         ax.text(mid, 1.01, p["name"], transform=ax.get_xaxis_transform(), ha="center", va="bottom",
