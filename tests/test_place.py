@@ -150,6 +150,19 @@ def test_place_command_table_json_and_chart(tmp_path, cli, capsys):
     assert json.loads(capsys.readouterr().out)["layers"][1]["dtype"] == "fp64"
 
 
+def test_place_file_with_store_keeps_the_placements_under_the_ceilings_host(tmp_path, cli, capsys):
+    store = temp_store(tmp_path)
+    uuid = save_survey(store, synthetic_figures())
+    assert cli(["place", str(_layer_file(tmp_path)), "--db", store.url, "--run", uuid, "--store"]) == 0
+    assert "stored as run" in capsys.readouterr().out
+    (layers_run,) = store.runs(kind="layers")
+    stored = store.load_run(layers_run.id)
+    survey = store.load_run(store.resolve_run(uuid)).summary
+    assert stored.ceilings_run_uuid == uuid and stored.summary.host_key == survey.host_key
+    assert [p.layer for p in stored.placements] == ["wren.head", "wren.proj"]
+    assert stored.placements[0].samples == (0.001, 0.0012)
+
+
 def test_place_command_errors_are_one_line_each_and_exit_2(tmp_path, cli, capsys):
     store = temp_store(tmp_path)
     only_fp64 = [f for f in synthetic_figures() if f.dtype == "fp64" or f.suite == "memory"]

@@ -29,6 +29,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="for dense and attention layers, show intensity and throughput per batch size")
     parser.add_argument("--json", metavar="PATH", help="write the placements as JSON to PATH ('-': stdout)")
     parser.add_argument("--chart", metavar="PATH", help="draw the roofline chart to PATH (.png and .svg)")
+    parser.add_argument("--store", action="store_true",
+                        help="with FILE: also store the placements as a run of the ceilings run's host "
+                             "(--builtin always stores)")
     parser.add_argument("--db", metavar="URL", default=None,
                         help="store URL (default: $EAVES_DB or sqlite:///results/eaves.db)")
 
@@ -65,6 +68,8 @@ def run(args: argparse.Namespace) -> int:
     stored = None
     if args.builtin:
         stored = _store_builtin(store, facts, model, placed, args)
+    elif args.store:
+        stored = _store_file(store, model, placed, args.file)
     if args.chart:
         from eaves.roofline_chart import draw_chart
 
@@ -97,6 +102,23 @@ def _store_builtin(store, facts, model, placed, args) -> str:
 
     return store_layers_run(store, facts, model, placed,
                             {"builtin": True, "quick": args.quick, "threads": args.threads}, SCENARIO)
+
+
+def _store_file(store, model, placed, path: str) -> str:
+    """A file's layers, stored under the host whose ceilings they were placed under (the timings
+    may come from anywhere: the file says nothing of the machine)."""
+    from eaves import __version__
+    from eaves.records import RunRecord
+
+    survey = store.load_run(store.resolve_run(model.run_uuid))
+    ceilings, host_facts = survey.summary, survey.host_facts
+    now = dt.datetime.now(dt.timezone.utc)
+    record = RunRecord(host_key=ceilings.host_key, hostname=ceilings.hostname,
+                       fingerprint=store.host_fingerprint(ceilings.host_key) or "", host_facts=host_facts,
+                       started_at=now, eaves_version=__version__, params={"file": str(path)}, kind="layers",
+                       status="complete", ended_at=now, note=f"layer timings from {path}",
+                       ceilings_run_uuid=model.run_uuid, placements=list(placed))
+    return store.save_run(record)
 
 
 def store_layers_run(store, facts, model, placed, params: dict, note: str) -> str:
