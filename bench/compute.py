@@ -167,16 +167,21 @@ def peak_figures(host, runs: Sequence[PeakRun], clock_hz: float) -> list[Figure]
 
     `clock_hz` is the highest per-core clock measured at any thread count: a core runs no faster
     with more cores busy, so it bounds every thread count (and contention can only lower rates).
-    Multiply-add units are inferred from the run with the fewest threads.
+    Multiply-add units are inferred from the best per-core rate of any thread count (a disturbed
+    one-thread run must not make an honest two-thread run look impossible); the documented cap
+    on units still stops a broken kernel.
     """
     from eaves.kernels.compute import block_instructions
 
-    figures, terms = [], None
+    def cores_of(run):
+        return min(run.threads, host.physical_cores or run.threads)
+
+    figures = []
+    best = max(runs, key=lambda r: max(r.rates) / cores_of(r))
+    terms = _bound_terms(host, best.kernel, max(best.rates) / cores_of(best), clock_hz)
     for run in sorted(runs, key=lambda r: r.threads):
         k, n = run.kernel, run.threads
-        cores = min(n, host.physical_cores or n)
-        if terms is None:
-            terms = _bound_terms(host, k, max(run.rates) / cores, clock_hz)
+        cores = cores_of(run)
         lanes, units, ratio, more = terms
         label = "MACs per cycle (tile unit)" if k.spec.is_tile else "lanes"
         bound = Bound(theoretical_ops_per_s(cores, clock_hz, lanes, units), cores, clock_hz, lanes, units,
