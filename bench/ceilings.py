@@ -6,6 +6,7 @@ from dataclasses import dataclass
 from typing import Optional, Sequence
 
 from eaves.records import Figure
+from eaves.timing import coefficient_of_variation
 
 LEVEL_ORDER = ("L1", "L2", "L3", "L4", "L?", "DRAM")
 KERNELS = ("read", "write", "copy", "axpy")
@@ -44,14 +45,6 @@ class StrideRow:
     vs_sequential: float  # useful bandwidth over the stride-1 figure
 
 
-def _cv(f: Figure) -> float:
-    import statistics
-
-    if len(f.samples) < 2:
-        return 0.0
-    return statistics.stdev(f.samples) / statistics.fmean(f.samples)
-
-
 def memory_ceilings(figures: Sequence[Figure]) -> list[MemoryCeiling]:
     """For each (level, kernel, threads) the variant with the highest median."""
     best: dict[tuple[str, str, int], Figure] = {}
@@ -61,7 +54,8 @@ def memory_ceilings(figures: Sequence[Figure]) -> list[MemoryCeiling]:
         key = (f.cache_level, f.kernel, f.threads)
         if key not in best or f.median > best[key].median:
             best[key] = f
-    rows = [MemoryCeiling(k[0], k[1], k[2], f.median, f.variant or "", f.working_set_bytes or 0, _cv(f))
+    rows = [MemoryCeiling(k[0], k[1], k[2], f.median, f.variant or "", f.working_set_bytes or 0,
+                           coefficient_of_variation(f.samples))
             for k, f in best.items()]
     return sorted(rows, key=lambda r: (level_key(r.level), r.threads, KERNELS.index(r.kernel)
                                        if r.kernel in KERNELS else 9))

@@ -19,6 +19,7 @@ from sqlalchemy.orm import Session, selectinload
 from eaves import schema
 from eaves.errors import StoreError
 from eaves.models import SCHEMA_REVISION, Host, Measurement, Placement, Run, new_uuid
+from eaves.timing import coefficient_of_variation, quartiles
 from eaves.records import FIGURE_UNITS, Figure, PlacedLayer, RunRecord, RunSummary, StoredRun
 
 DEFAULT_DB_PATH = Path("results") / "eaves.db"
@@ -413,11 +414,11 @@ def _short(err: Exception) -> str:
 def _measurement_row(f: Figure) -> Measurement:
     values = {unit: None for unit in FIGURE_UNITS}
     values[f.unit] = f.median
-    q1, q3 = _quartiles(f.samples)
+    q1, q3 = quartiles(f.samples)
     return Measurement(suite=f.suite, kernel=f.kernel, variant=f.variant, dtype=f.dtype,
                        threads=f.threads, working_set_bytes=f.working_set_bytes,
                        cache_level=f.cache_level, stride_elems=f.stride_elems, shape=f.shape,
-                       best=f.best, q1=q1, q3=q3, cv=_cv(f.samples), samples=list(f.samples),
+                       best=f.best, q1=q1, q3=q3, cv=coefficient_of_variation(f.samples), samples=list(f.samples),
                        repetitions=f.repetitions, min_seconds=f.min_seconds, extra=f.extra, **values)
 
 
@@ -460,22 +461,3 @@ def _aware(value: Optional[dt.datetime]) -> Optional[dt.datetime]:
     if value is not None and value.tzinfo is None:
         return value.replace(tzinfo=dt.timezone.utc)
     return value
-
-
-def _quartiles(samples: tuple[float, ...]) -> tuple[float, float]:
-    import statistics
-
-    s = sorted(samples)
-    if len(s) < 2:
-        return s[0], s[0]
-    q = statistics.quantiles(s, n=4, method="inclusive")
-    return q[0], q[2]
-
-
-def _cv(samples: tuple[float, ...]) -> float:
-    import statistics
-
-    if len(samples) < 2:
-        return 0.0
-    mean = statistics.fmean(samples)
-    return statistics.stdev(samples) / mean if mean else 0.0

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 import subprocess
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Callable, Optional, Sequence
 
 from eaves import __version__, interrupts

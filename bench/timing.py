@@ -10,9 +10,26 @@ from __future__ import annotations
 import statistics
 import time
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
 clock_ns = time.perf_counter_ns  # monotonic, nanosecond resolution
+
+
+def quartiles(values: Sequence[float]) -> tuple[float, float]:
+    """First and third quartiles (inclusive method); both the value itself for one sample."""
+    s = sorted(values)
+    if len(s) < 2:
+        return s[0], s[0]
+    q = statistics.quantiles(s, n=4, method="inclusive")
+    return q[0], q[2]
+
+
+def coefficient_of_variation(values: Sequence[float]) -> float:
+    """Standard deviation over mean; 0 for fewer than two samples."""
+    if len(values) < 2:
+        return 0.0
+    mean = statistics.fmean(values)
+    return statistics.stdev(values) / mean if mean else 0.0
 
 
 @dataclass(frozen=True)
@@ -56,11 +73,7 @@ class Timing:
 
     @property
     def quartiles(self) -> tuple[float, float]:
-        s = sorted(self.seconds)
-        if len(s) < 2:
-            return s[0], s[0]
-        q = statistics.quantiles(s, n=4, method="inclusive")
-        return q[0], q[2]
+        return quartiles(self.seconds)
 
     @property
     def iqr(self) -> float:
@@ -70,9 +83,7 @@ class Timing:
     @property
     def cv(self) -> float:
         """Coefficient of variation (standard deviation over mean) of the samples."""
-        if len(self.seconds) < 2:
-            return 0.0
-        return statistics.stdev(self.seconds) / statistics.fmean(self.seconds)
+        return coefficient_of_variation(self.seconds)
 
     def rates(self, work_per_repetition: float) -> tuple[float, ...]:
         """Work per second for every sample (bytes/s, FLOP/s ... whatever `work` counts)."""

@@ -140,10 +140,3 @@ MEMORY_KERNELS: tuple[MemoryKernel, ...] = (
     MemoryKernel("copy", "libc memcpy", 2, 8, 8, False, _bind_copy(nt.copy_memcpy),
                  "copy by the C library's memcpy, called per thread slice"),
 )
-
-
-def memory_kernel(name: str, variant: str) -> MemoryKernel:
-    for k in MEMORY_KERNELS:
-        if k.name == name and k.variant == variant:
-            return k
-    raise KeyError(f"{name}/{variant}")

@@ -8,7 +8,7 @@ import json
 import numpy as np
 import pytest
 from history_fixtures import fill_history, history_figures, layers_record, survey_record
-from layer_fixtures import HOST_KEY, HOSTNAME
+from layer_fixtures import HOSTNAME
 
 from eaves.cli import main
 from eaves.errors import EXIT_INPUT, EXIT_WORSE

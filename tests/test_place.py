@@ -11,7 +11,7 @@ from layer_fixtures import CACHES, HOST_KEY, KIB, save_survey, synthetic_figures
 
 import eaves.cli
 from eaves.errors import InputError
-from eaves.layers import LayerSpec, count
+from eaves.layers import LayerSpec
 from eaves.place import Placer, as_dtype, place_layers
 from eaves.roofline import model_from_figures
 
@@ -83,8 +83,8 @@ def test_missing_compute_ceilings_are_listed_together(model):
     with pytest.raises(InputError) as err:
         place_layers(layers, model)
     lines = str(err.value).splitlines()
-    assert lines == [f"f.csv:a: dtype: no compute ceilings for fp16 in run 0badc0de (measured: fp32, fp64, int8)",
-                     f"f.csv:c: dtype: no compute ceilings for bf16 in run 0badc0de (measured: fp32, fp64, int8)"]
+    assert lines == ["f.csv:a: dtype: no compute ceilings for fp16 in run 0badc0de (measured: fp32, fp64, int8)",
+                     "f.csv:c: dtype: no compute ceilings for bf16 in run 0badc0de (measured: fp32, fp64, int8)"]
 
 
 def test_what_if_int8_quarters_the_bytes_and_raises_the_roof(model):

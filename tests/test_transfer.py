@@ -9,7 +9,7 @@ import pytest
 
 from eaves.errors import StoreError
 from eaves.store import Store
-from eaves.transfer import copy_runs, merge, push, save_or_spool
+from eaves.transfer import copy_runs, push, save_or_spool
 from run_records import figures, record
 from store_backends import run_cli, store_url  # noqa: F401  (fixtures)
 

@@ -10,7 +10,6 @@ from __future__ import annotations
 import statistics
 import time
 
-import numpy as np
 
 from eaves.compute import GemmCase, gemm_call, measure_gemm
 from eaves.threads import use_threads, usable_cpus
