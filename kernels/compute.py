@@ -398,17 +398,24 @@ def _chain_asm(arch: str) -> str | None:
     return None if one is None else "\n\t".join([one] * CHAIN_ADDS)
 
 
+def _chain_constraints(arch: str) -> str:
+    # x86 `add` writes the flags: without the clobber, znver3/znver4 scheduling moves the loop's exit
+    # compare above the asm and the loop never ends. AArch64 `add` (no `s`) leaves NZCV alone.
+    return "=r,r,0,~{flags}" if arch == "x86_64" else "=r,r,0"
+
+
 @intrinsic
 def _add_chain(typingctx, x):
     import platform
 
     text = _chain_asm(platform.machine())
+    constraints = _chain_constraints(platform.machine())
     if text is None:
         return None
 
     def codegen(context, builder, signature, args):
         one = ir.Constant(I64, 1)
-        return builder.asm(ir.FunctionType(I64, [I64, I64]), text, "=r,r,0", [one, args[0]], side_effect=True)
+        return builder.asm(ir.FunctionType(I64, [I64, I64]), text, constraints, [one, args[0]], side_effect=True)
 
     return types.int64(types.int64), codegen
 
