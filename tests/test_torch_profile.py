@@ -9,9 +9,9 @@ import os
 import pytest
 
 if os.environ.get("CI"):
-    import torch  # CI installs the CPU build (the test extra): these tests must run there, never skip
+    import torch  # .ci/run installs a CPU build of torch: these tests must run there, never skip
 else:
-    torch = pytest.importorskip("torch")
+    torch = pytest.importorskip("torch", reason="PyTorch is not installed; pip install -e '.[torch]' enables these tests")
 
 from layer_fixtures import save_survey, synthetic_figures, temp_store  # noqa: E402
 from torch import nn  # noqa: E402
