@@ -408,8 +408,8 @@ def _chain_constraints(arch: str) -> str:
 def _add_chain(typingctx, x):
     import platform
 
-    text = _chain_asm(platform.machine())
-    constraints = _chain_constraints(platform.machine())
+    arch = platform.machine()
+    text, constraints = _chain_asm(arch), _chain_constraints(arch)
     if text is None:
         return None
 
