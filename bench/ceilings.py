@@ -27,6 +27,7 @@ class MemoryCeiling:
     variant: str
     working_set_bytes: int
     cv: float
+    caution: Optional[str] = None  # "possibly cache-assisted" for DRAM taken below the DRAM working set
 
 
 @dataclass(frozen=True)
@@ -55,7 +56,7 @@ def memory_ceilings(figures: Sequence[Figure]) -> list[MemoryCeiling]:
         if key not in best or f.median > best[key].median:
             best[key] = f
     rows = [MemoryCeiling(k[0], k[1], k[2], f.median, f.variant or "", f.working_set_bytes or 0,
-                           coefficient_of_variation(f.samples))
+                           coefficient_of_variation(f.samples), f.extra.get("caution"))
             for k, f in best.items()]
     return sorted(rows, key=lambda r: (level_key(r.level), r.threads, KERNELS.index(r.kernel)
                                        if r.kernel in KERNELS else 9))

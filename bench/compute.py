@@ -16,7 +16,8 @@ import numpy as np
 from eaves.errors import BrokenKernelError, InputError
 from eaves.peak import (MAX_TILE_MACS_PER_CYCLE, TOLERANCE, Bound, check_below, infer_madd_units,
                         infer_tile_macs_per_cycle, lanes_of, theoretical_ops_per_s, units_per_cycle)
-from eaves.records import Figure
+from eaves.records import Figure, StepFailure
+from eaves.supervisor import Steps, Supervisor, step_seconds
 from eaves.threads import check_thread_counts, use_threads
 from eaves.timing import TimingPolicy, calibrate, repeat_callable, sample
 
@@ -32,11 +33,6 @@ INT8_MAX_K = 1024  # int8 products (|x| <= 128) summed in fp32 stay exact while 
 MODES = tuple(SQUARE)
 
 Progress = Optional[Callable[[str], None]]
-
-
-def _say(progress: Progress, text: str) -> None:
-    if progress is not None:
-        progress(text)
 
 
 def check_dtypes(dtypes: Sequence[str] | None) -> list[str]:
@@ -103,14 +99,12 @@ def candidates(available) -> list:
     return widest([k for k in available if k.native])[:2] + widest([k for k in available if not k.native])[:1]
 
 
-def _choose(kernels, policy: TimingPolicy, progress: Progress):
-    """Fastest verified kernel at one thread, and the rate of every one tried."""
-    tried = {}
-    for k in kernels:
-        _say(progress, f"compute: trying {k.name}")
-        tried[k] = k.ops_per_rep / _peak_timing(k, 1, policy).best
-    best = max(tried, key=tried.get)
-    return best, {k.name: rate for k, rate in tried.items()}
+def time_peak(kernel_name: str, threads: int, policy: TimingPolicy):
+    """A survey step: the Timing of one registry kernel at `threads` threads, checksums verified."""
+    from eaves.kernels.compute import REGISTRY
+
+    kernel = next(k for k in REGISTRY if k.name == kernel_name)
+    return _peak_timing(kernel, threads, policy)
 
 
 @dataclass(frozen=True)
@@ -129,21 +123,36 @@ class PeakRun:
         return self.timing.rates(self.kernel.ops_per_rep * self.threads)
 
 
-def run_peak(host, dtype: str, thread_counts: Sequence[int], policy: TimingPolicy,
-             progress: Progress = None) -> list[PeakRun]:
-    """Time the fastest verified kernel of one dtype at each thread count (none if the host has no path)."""
+def run_peak(host, dtype: str, thread_counts: Sequence[int], policy: TimingPolicy, steps: Steps) -> list[PeakRun]:
+    """Time the fastest verified kernel of one dtype at each thread count (none if the host has no path).
+
+    The candidates are tried at one thread; a candidate whose step failed is left out."""
     from eaves.kernels.compute import kernels_for, unavailable_reasons
 
     available = kernels_for(host.features, platform.machine(), dtype)
-    if not available:
+    tried = {}
+    for k in candidates(available):
+        t = steps.run(f"compute: trying {k.name} x1", time_peak, (k.name, 1, policy), _peak_seconds(policy),
+                      {"suite": "compute", "kernel": k.name, "dtype": dtype, "threads": 1})
+        if t is not None:
+            tried[k] = k.ops_per_rep / t.best
+    if not tried:
         return []
-    kernel, alternatives = _choose(candidates(available), policy, progress)
+    kernel = max(tried, key=tried.get)
+    alternatives = {k.name: rate for k, rate in tried.items()}
     missing = unavailable_reasons(host.features, platform.machine(), dtype) or None
     runs = []
     for n in thread_counts:
-        _say(progress, f"compute: {dtype} multiply-add peak, {n} thread(s)")
-        runs.append(PeakRun(dtype, kernel, n, _peak_timing(kernel, n, policy), alternatives, missing))
+        t = steps.run(f"compute: {dtype} multiply-add peak ({kernel.name}) x{n}", time_peak, (kernel.name, n, policy),
+                      _peak_seconds(policy), {"suite": "compute", "kernel": kernel.name, "dtype": dtype, "threads": n})
+        if t is not None:
+            runs.append(PeakRun(dtype, kernel, n, t, alternatives, missing))
     return runs
+
+
+def _peak_seconds(policy: TimingPolicy) -> float:
+    # `_sample` calibrates twice before sampling
+    return 2 * step_seconds(policy)
 
 
 def _bound_terms(host, kernel, ops_per_s_one_core: float, clock_hz: float) -> tuple[int, int, float, dict]:
@@ -354,33 +363,61 @@ def measure_gemm(case: GemmCase, threads: int, policy: TimingPolicy) -> Figure:
 
 def measure_compute(host, thread_counts: Sequence[int], policy: TimingPolicy, dtypes: Sequence[str] | None,
                     max_memory_bytes: int, progress: Progress = None, *, mode: str = "quick",
-                    gemm_sizes: Sequence[int] | None = None) -> list[Figure]:
+                    gemm_sizes: Sequence[int] | None = None, runner=None,
+                    failures: Optional[list[StepFailure]] = None) -> list[Figure]:
     """Clock, multiply-add peak and GEMM figures for each dtype and thread count.
 
-    Raises InputError for an unknown dtype, a thread count out of range or a GEMM size above
-    `max_memory_bytes`; BrokenKernelError for a wrong checksum or a rate above the host's bound.
+    Every kernel runs as a step of the `runner` (a Supervisor of its own when none is given); a
+    step that fails (wrong checksum, crash, deadline) is appended to `failures` and the others go
+    on; a peak above the host's bound is a failure too. Raises InputError for an unknown dtype,
+    a thread count out of range or a GEMM size above `max_memory_bytes`.
     """
     chosen = check_dtypes(dtypes)
     counts = check_thread_counts(list(thread_counts))
     cases = gemm_cases(chosen, mode, max_memory_bytes, gemm_sizes)
+    failed = failures if failures is not None else []
+    own = runner is None
+    runner = runner or Supervisor()
+    try:
+        return _measure_compute(host, counts, policy, chosen, cases, Steps(runner, progress or (lambda m: None), failed))
+    finally:
+        if own:
+            runner.close()
+
+
+def _clock_step(steps: Steps, threads: int, policy: TimingPolicy) -> Optional[Figure]:
+    return steps.run(f"compute: clock (int-chain) x{threads}", measure_clock, (threads, policy), _peak_seconds(policy),
+                     {"suite": "clock", "kernel": "int-chain", "threads": threads})
+
+
+def _measure_compute(host, counts, policy, chosen, cases, steps: Steps) -> list[Figure]:
     figures: list[Figure] = []
-    clocks = {}
-    for n in counts:
-        _say(progress, f"compute: clock, {n} thread(s)")
-        clocks[n] = measure_clock(n, policy)
-    runs = [run_peak(host, d, counts, policy, progress) for d in chosen]
+    clocks = {n: f for n in counts if (f := _clock_step(steps, n, policy)) is not None}
+    runs = [run_peak(host, d, counts, policy, steps) for d in chosen]
     # the clock again after the peaks: the bound takes the best of both, so one noisy sample cannot sink it
-    again = measure_clock(counts[0], policy)
-    first = clocks[counts[0]]
-    clocks[counts[0]] = replace(first, samples=first.samples + again.samples)
+    again = _clock_step(steps, counts[0], policy)
+    if again is not None:
+        first = clocks.get(counts[0])
+        clocks[counts[0]] = again if first is None else replace(first, samples=first.samples + again.samples)
     figures += clocks.values()
-    clock_hz = max(f.best for f in clocks.values())
-    for r in runs:
-        figures += peak_figures(host, r, clock_hz)
+    if clocks:
+        clock_hz = max(f.best for f in clocks.values())
+        for r in (r for r in runs if r):
+            try:
+                figures += peak_figures(host, r, clock_hz)
+            except BrokenKernelError as err:  # above the bound: a broken kernel, never a record
+                steps.failures.append(StepFailure(f"compute: {r[0].dtype} multiply-add peak", str(err),
+                                                  {"suite": "compute", "kernel": r[0].kernel.name, "dtype": r[0].dtype}))
+    elif any(runs):
+        steps.failures.append(StepFailure("compute: multiply-add peaks", "no clock was measured, so no peak can be "
+                                          "checked against the host's bound; the peaks are not reported", {"suite": "compute"}))
     for c in cases:
         for n in counts:
-            _say(progress, f"compute: GEMM {c.dtype} {c.shape}, {n} thread(s)")
-            figures.append(measure_gemm(c, n, policy))
+            f = steps.run(f"compute: GEMM {c.dtype} {c.shape} x{n}", measure_gemm, (c, n, policy),
+                          step_seconds(policy, ops_per_call=c.ops),
+                          {"suite": "gemm", "kernel": "matmul", "dtype": c.dtype, "shape": c.shape, "threads": n})
+            if f is not None:
+                figures.append(f)
     return figures
 
 

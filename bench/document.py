@@ -49,7 +49,8 @@ def run_document(run: dict[str, Any], host: dict[str, Any], figures: Sequence[Fi
         "host": host,
         "ceilings": {
             "memory": [{"level": c.level, "kernel": c.kernel, "threads": c.threads, "bytes_per_s": c.bytes_per_s,
-                        "variant": c.variant, "working_set_bytes": c.working_set_bytes, "cv": c.cv}
+                        "variant": c.variant, "working_set_bytes": c.working_set_bytes, "cv": c.cv,
+                        **({"caution": c.caution} if c.caution else {})}
                        for c in memory_ceilings(figures)],
             "latency": [{"level": c.level, "ns_per_load": c.ns_per_load, "working_set_bytes": c.working_set_bytes}
                         for c in latency_ceilings(figures)],
@@ -59,6 +60,8 @@ def run_document(run: dict[str, Any], host: dict[str, Any], figures: Sequence[Fi
             "compute": _compute_rows(figures),
         },
         "figures": [figure_dict(f) for f in figures],
+        # steps that gave no figure (a hang, a crash, a wrong checksum, a rate above the bound) and why
+        "failures": list((run.get("params") or {}).get("failures") or []),
     }
     if placements:
         doc["layers"] = [dataclasses.asdict(p) for p in placements]

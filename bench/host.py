@@ -140,6 +140,28 @@ class HostFacts:
         data = [c for c in self.caches if c.kind != "instruction"]
         return max(data, key=lambda c: c.level) if data else None
 
+    def socket_cache_bytes(self) -> int | None:
+        """Every data cache instance of one socket added up (L1d, L2, L3 ...): what a DRAM working set must dwarf.
+
+        L1d counts too: on an exclusive hierarchy its lines are in no other level, and it changes the
+        sum by a few percent at most. Instances per socket are the host's divided by its sockets (one
+        socket when unknown: a larger sum, never a smaller); without instance counts, the CPUs of a
+        socket divided by the CPUs sharing one instance; without either, one instance."""
+        data = [c for c in self.caches if c.kind != "instruction"]
+        if not data:
+            return None
+        sockets = max(1, self.sockets or 1)
+        total = 0
+        for c in data:
+            if c.instances:
+                per_socket = -(-c.instances // sockets)
+            elif c.shared_cpus:
+                per_socket = max(1, self.logical_cpus // sockets // c.shared_cpus)
+            else:
+                per_socket = 1
+            total += c.size_bytes * per_socket
+        return total
+
 
 # ---------------------------------------------------------------- pure parsers on text
 

@@ -64,6 +64,19 @@ class PlacedLayer:
     extra: dict[str, Any] = field(default_factory=dict)
 
 
+@dataclass(frozen=True)
+class StepFailure:
+    """A measurement that gave no figure: which step (its progress label and identity) and why."""
+
+    label: str  # e.g. "sweep read 64 KiB x1"
+    reason: str  # e.g. "no result within 40 s", "killed by SIGILL (an instruction this CPU lacks)"
+    what: dict[str, Any] = field(default_factory=dict)  # suite, kernel, threads, working_set_bytes ...
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"label": self.label, "reason": self.reason, **{k: v for k, v in self.what.items()
+                                                               if k not in ("label", "reason")}}
+
+
 @dataclass
 class RunRecord:
     """A run as the harness builds it; stored in one transaction when it ends."""

@@ -83,7 +83,8 @@ def _ceilings(run: StoredRun) -> str:
 
     figs = run.figures
     parts = [_table(("level", "kernel", "threads", "bandwidth", "variant", "working set", "cv"),
-                    [(c.level, c.kernel, c.threads, format_rate(c.bytes_per_s, "B/s"), c.variant,
+                    [(c.level + (f" ({c.caution})" if c.caution else ""), c.kernel, c.threads,
+                      format_rate(c.bytes_per_s, "B/s"), c.variant,
                       format_bytes(c.working_set_bytes), f"{c.cv:.1%}") for c in memory_ceilings(figs)], left=2)]
     lat = latency_ceilings(figs)
     if lat:
@@ -95,6 +96,10 @@ def _ceilings(run: StoredRun) -> str:
                             [(c.dtype, c.threads, format_rate(c.peak_ops_per_s, "OP/s"),
                               format_rate(c.gemm_ops_per_s, "OP/s"), c.gemm_shape or "-", "yes" if c.native else "no")
                              for c in comp]))
+    failures = run.params.get("failures") or []
+    if failures:
+        parts.append("<h3>Steps that gave no figure</h3>"
+                     + _table(("step", "reason"), [(f.get("label", "?"), f.get("reason", "?")) for f in failures], left=2))
     return "".join(parts)
 
 

@@ -9,11 +9,11 @@ from typing import Callable, Optional, Sequence
 
 from eaves import __version__, interrupts
 from eaves.budget import MemoryBudget
-from eaves.errors import BrokenKernelError
 from eaves.host import HostFacts
 from eaves.levels import CacheCapacity, Plateau
 from eaves.memory_survey import MemoryPlan, measure_memory
-from eaves.records import Figure, RunRecord
+from eaves.records import Figure, RunRecord, StepFailure
+from eaves.supervisor import Supervisor
 
 Progress = Callable[[str], None]
 # No core moves more than four full vector registers of data per cycle between its caches and
@@ -34,6 +34,7 @@ class SurveyOptions:
     tag: Optional[str] = None
     note: Optional[str] = None
     parts: tuple[str, ...] = ("memory", "compute")
+    step_seconds: Optional[float] = None  # every step's deadline, instead of the one its plan gives
 
 
 @dataclass
@@ -42,6 +43,7 @@ class SurveyOutcome:
     plateaus: dict[int, list[Plateau]] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     interrupted_by: Optional[str] = None
+    failures: list[StepFailure] = field(default_factory=list)  # steps that gave no figure, and why
 
 
 def git_describe() -> Optional[str]:
@@ -99,10 +101,11 @@ def run_survey(host: HostFacts, options: SurveyOptions, progress: Progress = lam
     """
     record = new_record(host, options, survey_params(options))
     outcome = SurveyOutcome(record)
-    with interrupts.stoppable() as stop:
+    with interrupts.stoppable() as stop, Supervisor(options.step_seconds) as runner:
         if "memory" in options.parts:
             caps, shares = reported_caches(host)
-            memory = measure_memory(options.memory_plan, caps, progress, shares, sink=record.figures)
+            memory = measure_memory(options.memory_plan, caps, progress, shares, sink=record.figures,
+                                    runner=runner, failures=outcome.failures)
             outcome.plateaus = memory.plateaus
             outcome.notes += memory.notes
             record.params["threading_layer"] = _threading_layer()
@@ -112,13 +115,17 @@ def run_survey(host: HostFacts, options: SurveyOptions, progress: Progress = lam
             policy = options.memory_plan.policy
             record.figures += measure_compute(host, list(options.thread_counts), policy, options.dtypes,
                                               options.budget.cap_bytes, progress,
-                                              mode="quick" if options.quick else "full")
-        check_physical_bounds(host, record.figures)
-        outcome.notes += consistency_notes(record.figures)
+                                              mode="quick" if options.quick else "full", runner=runner,
+                                              failures=outcome.failures)
+    kept, broken = within_physical_bounds(host, record.figures)
+    record.figures[:] = kept
+    outcome.failures += broken
+    outcome.notes += consistency_notes(record.figures)
     outcome.interrupted_by = stop.signal
     record.status = "interrupted" if stop.signal else "complete"
     record.ended_at = dt.datetime.now(dt.timezone.utc)
     record.params["levels"] = {str(t): [_plateau_dict(p) for p in ps] for t, ps in outcome.plateaus.items()}
+    record.params["failures"] = [f.to_dict() for f in outcome.failures]
     return outcome
 
 
@@ -135,22 +142,35 @@ def memory_bound_bytes_per_s(host: HostFacts, threads: int, clock_hz: Optional[f
     return threads * clock * VECTORS_PER_CYCLE_BOUND * host.vector_bits / 8
 
 
-def check_physical_bounds(host: HostFacts, figures: Sequence[Figure]) -> None:
-    """A bandwidth above what the cores can move, or a load faster than a cycle, is a broken kernel."""
+def bound_violation(host: HostFacts, f: Figure, clock: Optional[float]) -> Optional[str]:
+    """Why a figure cannot be honest: a bandwidth above what the cores can move, a load faster than a cycle."""
+    if f.unit == "bytes_per_s":
+        bound = memory_bound_bytes_per_s(host, f.threads, clock)
+        if bound and f.best > bound:
+            return (f"{f.kernel}/{f.variant} at {f.working_set_bytes} B x{f.threads}: {f.best:.3g} B/s is above "
+                    f"the host's bound of {bound:.3g} B/s (a broken kernel, not a record)")
+    if f.unit == "ns_per_load":
+        cycle_ns = 1e9 / (clock or (host.max_hz or host.nominal_hz or 5e9) * CLOCK_HEADROOM)
+        if f.best < cycle_ns:
+            return (f"chase at {f.working_set_bytes} B: {f.best:.3g} ns per load is below one clock cycle "
+                    f"({cycle_ns:.3g} ns): a broken kernel")
+    return None
+
+
+def within_physical_bounds(host: HostFacts, figures: Sequence[Figure]) -> tuple[list[Figure], list[StepFailure]]:
+    """The figures a host can physically produce, and a failure for each one it cannot."""
     clocks = [f.best for f in figures if f.suite == "clock"]
     clock = max(clocks) * 1.05 if clocks else None
+    kept, broken = [], []
     for f in figures:
-        if f.unit == "bytes_per_s":
-            bound = memory_bound_bytes_per_s(host, f.threads, clock)
-            if bound and f.best > bound:
-                raise BrokenKernelError(
-                    f"{f.kernel}/{f.variant} at {f.working_set_bytes} B x{f.threads}: {f.best:.3g} B/s is above "
-                    f"the host's bound of {bound:.3g} B/s (a broken kernel, not a record)")
-        if f.unit == "ns_per_load":
-            cycle_ns = 1e9 / (clock or (host.max_hz or host.nominal_hz or 5e9) * CLOCK_HEADROOM)
-            if f.best < cycle_ns:
-                raise BrokenKernelError(f"chase at {f.working_set_bytes} B: {f.best:.3g} ns per load is below "
-                                        f"one clock cycle ({cycle_ns:.3g} ns): a broken kernel")
+        why = bound_violation(host, f, clock)
+        if why is None:
+            kept.append(f)
+        else:
+            broken.append(StepFailure(f"{f.suite} {f.kernel} x{f.threads}", why,
+                                      {"suite": f.suite, "kernel": f.kernel, "variant": f.variant, "threads": f.threads,
+                                       "working_set_bytes": f.working_set_bytes, "cache_level": f.cache_level}))
+    return kept, broken
 
 
 def consistency_notes(figures: Sequence[Figure]) -> list[str]:

@@ -38,7 +38,8 @@ def memory_table(ceilings: Sequence[MemoryCeiling], latency: Sequence[LatencyCei
                 cells.append("-" if c is None else format_rate(c.bytes_per_s, "B/s") + VARIANT_MARKS.get(c.variant, ""))
             size = _size_cell(level, plateaus.get(str(t)) or plateaus.get(t) or [])
             latency = f"{lat[level]:.1f} ns" if (i == 0 and level in lat) else ""
-            table.add_row(level if i == 0 else "", size, str(t), *cells, latency,
+            shown = level + (" (possibly cache-assisted)" if any(c.caution for c in ceilings if c.level == level) else "")
+            table.add_row(shown if i == 0 else "", size, str(t), *cells, latency,
                           end_section=i == len(threads) - 1)
     return table
 
@@ -93,3 +94,16 @@ def runs_table(runs: Sequence[RunSummary], title: Optional[str] = None) -> Table
         table.add_row(str(r.id), r.uuid[:8], r.host_key, r.kind, r.status, r.started_at.strftime("%Y-%m-%d %H:%M:%S"),
                       secs, r.tag or "", str(r.n_figures), str(r.n_placements), r.git_describe or "")
     return table
+
+
+def failures_table(failures: Sequence[dict], title: str = "Steps that gave no figure") -> Table:
+    """One row per failed step: what ran (the progress label) and why it gave nothing."""
+    from rich.markup import escape
+
+    table = Table(title=title, title_justify="left", header_style="bold red", box=None, pad_edge=False)
+    table.add_column("step")
+    table.add_column("reason")
+    for f in failures:
+        table.add_row(escape(str(f.get("label", "?"))), escape(str(f.get("reason", "?"))))
+    return table
+

@@ -271,6 +271,40 @@ def test_fingerprint_follows_hardware_only(x86, arm):
     assert arm.fingerprint() != x86.fingerprint()
 
 
+def _socket_caches_in_capture(name: str, package: str = "0") -> int:
+    """Independent of eaves.host: in a sysfs capture, the distinct shared_cpu_list of every data or unified
+    cache/indexN among the CPUs whose topology/physical_package_id is `package` (Linux sysfs cacheinfo and
+    topology), each instance counted at its size."""
+    lines = (FIXTURES / name / "sys.txt").read_text().splitlines()
+    files = dict(line.split(":", 1) for line in lines if not line.startswith("#"))
+    cpu = "sys/devices/system/cpu"
+    in_package = {p.split("/")[4] for p, v in files.items() if p.endswith("/physical_package_id") and v == package}
+    instances: dict[str, set[str]] = {}
+    for path, value in files.items():
+        parts = path.split("/")  # sys/devices/system/cpu/cpuN/cache/indexM/shared_cpu_list
+        if path.endswith("/shared_cpu_list") and "/cache/" in path and parts[4] in in_package:
+            index = parts[6]
+            if files[f"{cpu}/cpu0/cache/{index}/type"] != "Instruction":
+                instances.setdefault(index, set()).add(value)
+    sizes = {index: files[f"{cpu}/cpu0/cache/{index}/size"] for index in instances}
+    assert all(v.endswith("K") for v in sizes.values())  # sysfs prints cache sizes in KiB
+    return sum(len(lists) * int(sizes[index][:-1]) * 1024 for index, lists in instances.items())
+
+
+def test_socket_cache_bytes_adds_every_data_cache_instance_of_one_socket(x86, arm):
+    for facts, name in ((x86, "x86_2s32c"), (arm, "arm_64c")):
+        assert facts.socket_cache_bytes() == _socket_caches_in_capture(name)
+    # the two sockets of the x86 capture are alike: socket 1 counts the same
+    assert x86.socket_cache_bytes() == _socket_caches_in_capture("x86_2s32c", package="1")
+    # one socket, not the host: the x86 host's L3 instances are two, its socket's one
+    assert x86.socket_cache_bytes() < sum(c.size_bytes * c.instances for c in x86.caches if c.kind != "instruction")
+    # the Zen 4 guest of tests/fixtures/zen4-kvm-2cpu (its README: L1d 32 KiB and L2 1 MiB per core, L3 32 MiB
+    # shared by both vCPUs, one socket, as sysfs reported them)
+    zen4 = json.loads((FIXTURES.parent / "zen4-kvm-2cpu" / "quick-memory.json").read_text())["host"]
+    assert HostFacts.from_dict(zen4).socket_cache_bytes() == 2 * 32 * 1024 + 2 * 2**20 + 32 * 2**20
+    assert dataclasses.replace(x86, caches=()).socket_cache_bytes() is None
+
+
 # ---------------------------------------------------------------- the live machine against the OS's own reports
 
 

@@ -7,7 +7,7 @@ from eaves.host import collect_host_facts
 from eaves.kernels import MEMORY_KERNELS, memory as mem, thread_slices
 from eaves.kernels.streaming import aligned_empty
 from eaves.levels import CacheCapacity, detect_plateaus
-from eaves.memory_survey import _chase, _strided
+from eaves.memory_steps import Buffers, chase, strided
 from eaves.threads import use_threads, usable_cpus
 from eaves.timing import TimingPolicy, sample
 
@@ -69,17 +69,16 @@ def test_l1_is_faster_than_dram(buffers):
 
 def test_dram_latency_is_above_l1_latency(buffers):
     # common practice: a dependent load that misses every cache waits for DRAM
-    a, _ = buffers
-    l1 = _chase(a, 16 * 1024, TINY, "L1").best
-    dram = _chase(a, DRAM_BYTES, TINY, "DRAM").best
+    held = Buffers(DRAM_BYTES, 1)
+    l1 = chase(held, 16 * 1024, TINY, "L1").best
+    dram = chase(held, DRAM_BYTES, TINY, "DRAM").best
     assert dram > 5 * l1
 
 
 def test_strided_useful_bandwidth_falls_as_the_stride_grows_to_a_line(buffers):
     # common practice: a cache line is moved whole, so touching fewer of its bytes wastes the rest
-    a, _ = buffers
     size = DRAM_BYTES // 2
-    rates = [_strided(a, size, s, 1, TINY).best for s in (1, 2, 4, 8)]
+    rates = [strided(Buffers(DRAM_BYTES, 1), size, s, 1, TINY).best for s in (1, 2, 4, 8)]
     assert rates[0] > rates[1] > rates[2] > rates[3]
     assert rates[0] > 3 * rates[3]
 

@@ -11,8 +11,9 @@ from eaves.records import Figure
 from eaves.tables import compute_table, memory_table, stride_table
 
 
-def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, title: str) -> None:
-    """Memory table, stride table and penalty, compute table: whichever the run has."""
+def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, title: str,
+                   failures: Sequence[dict] = ()) -> None:
+    """Memory table, stride table and penalty, compute table, failed steps: whichever the run has."""
     if any(f.suite == "memory" for f in figures):
         console.print(memory_table(memory_ceilings(figures), latency_ceilings(figures), levels,
                                    f"Memory ceilings, {title}"))
@@ -32,6 +33,10 @@ def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, ti
                 r.native for r in rows if r.dtype in ("fp16", "bf16")):
             console.print("no native fp16/bf16 arithmetic path on this host: those rows (†) are emulated "
                           "and say how")
+    if failures:
+        from eaves.tables import failures_table
+
+        console.print(failures_table(failures))
 
 
 def make_console(stderr: bool = False) -> Console:

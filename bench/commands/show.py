@@ -45,5 +45,6 @@ def run(args: argparse.Namespace) -> int:
                   + (f", tag {s.tag}" if s.tag else "") + (f", git {s.git_describe}" if s.git_describe else ""))
     if s.note:
         console.print(f"note: {s.note}", markup=False)
-    print_ceilings(console, stored.figures, stored.params.get("levels", {}), s.uuid[:8])
+    print_ceilings(console, stored.figures, stored.params.get("levels", {}), s.uuid[:8],
+                   stored.params.get("failures") or ())
     return 0

@@ -12,7 +12,7 @@ from eaves import interrupts
 from eaves.budget import make_budget
 from eaves.charts import bandwidth_chart, scaling_chart
 from eaves.document import check_writable, run_document, write_document
-from eaves.errors import EXIT_INTERRUPTED, InputError
+from eaves.errors import EXIT_BROKEN, EXIT_INTERRUPTED, InputError
 from eaves.host import collect_host_facts
 from eaves.memory_survey import plan_memory
 from eaves.survey import SurveyOptions, reported_caches, run_survey
@@ -39,6 +39,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--sweep-top", metavar="SIZE", help="largest working set (default 4x the last-level cache)")
     p.add_argument("--samples", metavar="N", help="samples per figure (default 5 quick, 9 full)")
     p.add_argument("--sample-seconds", metavar="S", help="minimum seconds per sample (default 0.005 quick, 0.01 full)")
+    p.add_argument("--step-seconds", metavar="S", help="give every measurement step at most S seconds once "
+                   "compiled (default: ten times what its own plan needs, at least 40 s)")
     p.add_argument("--check", action="store_true", help="after saving, compare the run with this host's baseline "
                    "(median of its last 5 complete runs); exit 1 if a ceiling regressed beyond noise")
 
@@ -57,8 +59,21 @@ def _options(args: argparse.Namespace, host) -> SurveyOptions:
     top = parse_size(args.sweep_top, "--sweep-top") if args.sweep_top else None
     policy = _policy(args)
     plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, policy=policy, top_bytes=top,
-                       numa_nodes=host.numa_nodes)
-    return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts)
+                       numa_nodes=host.numa_nodes, socket_cache_bytes=host.socket_cache_bytes())
+    return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts,
+                         _step_seconds(args.step_seconds))
+
+
+def _step_seconds(text):
+    if text is None:
+        return None
+    try:
+        seconds = float(text)
+    except ValueError:
+        raise InputError(f"--step-seconds: {text!r} is not a number") from None
+    if not 0.1 <= seconds <= 86400:
+        raise InputError(f"--step-seconds: {seconds} is outside 0.1..86400")
+    return seconds
 
 
 def _policy(args: argparse.Namespace) -> TimingPolicy:
@@ -141,9 +156,38 @@ def run(args: argparse.Namespace) -> int:
     figures = record.figures
     levels = record.params.get("levels", {})
     title = f"{host.host_key()}  run {record.uuid[:8]}  ({record.status})"
+    failures = record.params.get("failures") or []
+    print_ceilings(console, figures, levels, title, failures)
+    if outcome.interrupted_by:  # leave at once: no charts
+        console.print(f"[red]interrupted by {outcome.interrupted_by}: stored as an interrupted run")
+    else:
+        _charts(console, host, figures, levels, charts_dir / f"{host.hostname}-{record.uuid[:8]}")
+    for note in outcome.notes:
+        console.print(f"[yellow]note:[/] {note}", highlight=False)
+    seconds = (record.ended_at - record.started_at).total_seconds()
+    buffers = 3 * options.memory_plan.buffer_bytes // 2 if "memory" in options.parts else 0
+    console.print(f"measured in {seconds:.1f} s; memory buffers {format_bytes(buffers)} "
+                  f"(cap {format_bytes(options.budget.cap_bytes)})")
+    if args.json:
+        doc = run_document(_run_meta(record, saved), record.host_facts, figures)
+        text = write_document(doc, args.json)
+        if text is not None:
+            sys.stdout.write(text + "\n")
+    if outcome.interrupted_by:
+        return EXIT_INTERRUPTED
+    if failures:
+        console.print(f"[red]{len(failures)} step(s) gave no figure (listed above); the run is stored with every "
+                      "figure that was measured")
+        return EXIT_BROKEN
+    if args.check:
+        from eaves.commands.trend import check_after_survey
+
+        return check_after_survey(console, args.db, record.uuid, spooled=saved.spooled)
+    return 0
+
+
+def _charts(console, host, figures, levels, stem: Path) -> None:
     caps, _ = reported_caches(host)
-    stem = charts_dir / f"{host.hostname}-{record.uuid[:8]}"
-    print_ceilings(console, figures, levels, title)
     if any(f.suite == "sweep" for f in figures):
         paths = bandwidth_chart(figures, levels, caps, stem.with_name(stem.name + "-bandwidth"),
                                 f"{host.hostname}: bandwidth by working set")
@@ -155,25 +199,6 @@ def run(args: argparse.Namespace) -> int:
         png = stem.with_name(stem.name + "-compute.png")
         plot_compute(compute_ceilings(figures), str(png), str(png.with_suffix(".svg")))
         console.print(f"chart: {png}")
-    for note in outcome.notes:
-        console.print(f"[yellow]note:[/] {note}")
-    seconds = (record.ended_at - record.started_at).total_seconds()
-    buffers = 3 * options.memory_plan.buffer_bytes // 2 if "memory" in options.parts else 0
-    console.print(f"measured in {seconds:.1f} s; memory buffers {format_bytes(buffers)} "
-                  f"(cap {format_bytes(options.budget.cap_bytes)})")
-    if args.json:
-        doc = run_document(_run_meta(record, saved), record.host_facts, figures)
-        text = write_document(doc, args.json)
-        if text is not None:
-            sys.stdout.write(text + "\n")
-    if outcome.interrupted_by:
-        console.print(f"[red]interrupted by {outcome.interrupted_by}: stored as an interrupted run")
-        return EXIT_INTERRUPTED
-    if args.check:
-        from eaves.commands.trend import check_after_survey
-
-        return check_after_survey(console, args.db, record.uuid, spooled=saved.spooled)
-    return 0
 
 
 def _run_meta(record, saved) -> dict:

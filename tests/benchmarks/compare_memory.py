@@ -3,7 +3,9 @@
 Run: python tests/benchmarks/compare_memory.py [--dram-bytes SIZE]
 Prints, for read/write/copy/axpy at an L1 size, an L2 size and a DRAM size, at 1 thread and all
 threads: the best eaves variant, the C loop, and their ratio (targets: DRAM within 5%, L1 and L2
-read within 20%). Rounds alternate eaves and C; the best of each is kept.
+read within 20%). Rounds alternate eaves and C; the best of each is kept. The DRAM size defaults to
+the survey's DRAM working set; one below 8x every cache of a socket is refused (its figure would be
+partly a cache's).
 """
 
 from __future__ import annotations
@@ -17,9 +19,10 @@ import tempfile
 from eaves.host import collect_host_facts
 from eaves.kernels import MEMORY_KERNELS
 from eaves.kernels.streaming import aligned_empty
+from eaves.memory_survey import DRAM_CACHE_MULTIPLE, dram_working_set
 from eaves.threads import use_threads, usable_cpus
 from eaves.timing import TimingPolicy, sample
-from eaves.units import format_rate, parse_size
+from eaves.units import format_bytes, format_rate, parse_size
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 POLICY = TimingPolicy(min_seconds=0.05, samples=5)
@@ -56,11 +59,17 @@ def eaves_rates(a, b, kernel: str, size: int, threads: int) -> dict[str, float]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     host = collect_host_facts()
-    llc = host.last_level_cache()
-    parser.add_argument("--dram-bytes", default=str(4 * (llc.size_bytes if llc else 2**25)))
+    socket = host.socket_cache_bytes()
+    parser.add_argument("--dram-bytes", default=str(dram_working_set(socket)))
     parser.add_argument("--rounds", type=int, default=2)
     args = parser.parse_args()
     dram = parse_size(args.dram_bytes)
+    if socket is None:
+        print("warning: the OS reports no cache sizes: cannot check that the DRAM size is past every cache")
+    elif dram < DRAM_CACHE_MULTIPLE * socket:
+        parser.error(f"--dram-bytes {format_bytes(dram)} is below {DRAM_CACHE_MULTIPLE}x this socket's caches "
+                     f"({format_bytes(socket)}): the figure would be partly a cache's; use at least "
+                     f"{format_bytes(dram_working_set(socket))}")
     l2 = host.cache(2)
     sizes = {"L1": 16 * 1024, "L2": (l2.size_bytes // 2) if l2 else 512 * 1024, "DRAM": dram}
     a, b = aligned_empty(dram // 8), aligned_empty(dram // 8)
@@ -69,7 +78,9 @@ def main() -> None:
         if exe is None:
             print("gcc not found: nothing to compare against")
             return
-        print(f"host {host.host_key()}, {host.model}; eaves best variant vs C, best of {args.rounds} rounds")
+        times = f", {dram / socket:.1f}x the socket's caches" if socket else ""
+        print(f"host {host.host_key()}, {host.model}; eaves best variant vs C, best of {args.rounds} rounds; "
+              f"DRAM at {format_bytes(dram)}{times}")
         print(f"{'level':6} {'kernel':6} {'thr':>3} {'eaves best':>12} {'eaves loop':>12} {'C loop':>12} "
               f"{'best/C':>6} {'loop/C':>6}  best variant")
         for level, size in sizes.items():
