@@ -3,7 +3,9 @@
 A change counts only when both hold: the two-sided Mann-Whitney U test (Mann and Whitney, "On a
 test of whether one of two random variables is stochastically larger than the other", Annals of
 Mathematical Statistics 18, 1947) rejects "same distribution" at `alpha`, and the medians differ
-by at least `threshold` (a fraction; the practical threshold). The test uses only ranks, so one
+by at least `threshold` (a fraction; the practical threshold) and by at least the run-to-run floor
+when a `RunNoise` is given (eaves.noise: a figure moves further between runs than between the
+samples of one run). The test uses only ranks, so one
 preempted sample cannot drag it the way it drags a mean; with few samples and no ties its p-value
 is exact. See the README's "Comparing runs" for the choice and its false-alarm and power figures.
 """
@@ -19,6 +21,7 @@ from typing import Optional, Sequence
 import numpy as np
 
 from eaves.errors import InputError
+from eaves.noise import RunNoise
 
 DEFAULT_THRESHOLD = 0.03  # 3 %: below this a change is not worth acting on, whatever the test says
 DEFAULT_ALPHA = 0.05
@@ -49,6 +52,12 @@ class Comparison:
     lower_is_better: bool
     n_before: int
     n_after: int
+    noise: Optional[RunNoise] = None  # the run-to-run noise the change was held against (None: samples only)
+
+    @property
+    def floor(self) -> float:
+        """The run-to-run floor the change had to pass besides the threshold (0 without run noise)."""
+        return self.noise.floor if self.noise else 0.0
 
     @property
     def change_pct(self) -> float:
@@ -130,13 +139,14 @@ def smallest_p(n1: int, n2: int) -> float:
 
 def compare(before: Sequence[float], after: Sequence[float], lower_is_better: bool = False,
             threshold: float = DEFAULT_THRESHOLD, alpha: float = DEFAULT_ALPHA,
-            reference: Optional[float] = None) -> Comparison:
+            reference: Optional[float] = None, noise: Optional[RunNoise] = None) -> Comparison:
     """Verdict on one figure. Faster means a higher rate, or a lower time or latency.
 
     When so few samples are given that even complete separation cannot reach `alpha` (for example
     one sample each), the test cannot speak; the change then counts if it passes the threshold and
     the ranges of the two sets do not overlap (method "ranges"). `reference` replaces the median of
     `before` as the value the change is measured from (a rolling baseline: the median of run medians).
+    `noise`: the figure's run-to-run noise; the change must also reach its floor.
     """
     before, after = [float(x) for x in before], [float(x) for x in after]
     if not before or not after:
@@ -153,8 +163,8 @@ def compare(before: Sequence[float], after: Sequence[float], lower_is_better: bo
         test = mann_whitney(before, after)
         p_value, method, apart = test.p_value, test.method, test.p_value < alpha
     verdict = NOISE
-    if apart and abs(change) >= threshold and change != 0:
+    if apart and abs(change) >= max(threshold, noise.floor if noise else 0.0) and change != 0:
         better = change < 0 if lower_is_better else change > 0
         verdict = FASTER if better else SLOWER
     return Comparison(m_before, m_after, change, p_value, method, verdict, lower_is_better,
-                      len(before), len(after))
+                      len(before), len(after), noise)

@@ -1,14 +1,16 @@
-"""Two runs side by side: every ceiling and every placed layer, each judged against noise."""
+"""Two runs side by side: every ceiling and every placed layer, each judged against noise: the
+samples' (the rank test) and the figure's run-to-run noise on its host (eaves.noise)."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Optional
+from typing import Mapping, Optional
 
 from eaves.compare import DEFAULT_ALPHA, DEFAULT_THRESHOLD, SLOWER, Comparison, compare
 from eaves.errors import InputError, StoreError
 from eaves.gate import LayerComparison, compare_layers
 from eaves.metrics import MetricKey, ceiling_figures, lower_is_better
+from eaves.noise import DEFAULT_NOISE_RUNS, RunNoise, default_noise, host_noise, larger, layer_noise
 from eaves.records import RunSummary, StoredRun
 
 
@@ -59,21 +61,44 @@ def resolve_ref(store, ref: str, hosts: Optional[list] = None) -> int:
         raise
 
 
+def diff_noise(store, before: StoredRun, after: StoredRun, k: int = DEFAULT_NOISE_RUNS,
+               ) -> tuple[dict[MetricKey, RunNoise], dict[str, RunNoise]]:
+    """The run-to-run noise of ceilings and layers for a diff: learned on each run's host from its
+    newest k complete runs of that kind started by the later of the two, the "after" run left out
+    (a change never sets its own noise); two hosts: per figure the larger spread."""
+    until = max(before.summary.started_at, after.summary.started_at)
+    skip = (after.summary.id,)
+    metrics: dict[MetricKey, RunNoise] = {}
+    layers: dict[str, RunNoise] = {}
+    for s in {before.summary.host_key: before.summary, after.summary.host_key: after.summary}.values():
+        for key, n in host_noise(store, s.host_key, s.kind, k, until, skip).items():
+            metrics[key] = larger(metrics.get(key), n)
+        if before.placements and after.placements:
+            for name, n in layer_noise(store, s.host_key, k, until, skip).items():
+                layers[name] = larger(layers.get(name), n)
+    return metrics, layers
+
+
 def diff_runs(before: StoredRun, after: StoredRun, same_hardware: bool = True,
-              threshold: float = DEFAULT_THRESHOLD, alpha: float = DEFAULT_ALPHA) -> RunDiff:
-    """Every ceiling of two runs side by side, and their placed layers when both have some."""
+              threshold: float = DEFAULT_THRESHOLD, alpha: float = DEFAULT_ALPHA,
+              noise: Optional[Mapping[MetricKey, RunNoise]] = None,
+              layers_noise: Optional[Mapping[str, RunNoise]] = None) -> RunDiff:
+    """Every ceiling of two runs side by side, and their placed layers when both have some.
+    `noise`: run-to-run noise per ceiling (a ceiling missing from it gets its suite's default);
+    None judges by the samples and the threshold alone."""
     a, b = ceiling_figures(before.figures), ceiling_figures(after.figures)
     keys = list(a) + [k for k in b if k not in a]
     changes = []
     for k in sorted(keys, key=MetricKey.sort_key):
         fa, fb = a.get(k), b.get(k)
         if fa and fb and fa.unit == fb.unit:
-            cmp = compare(fa.samples, fb.samples, lower_is_better(fa.unit), threshold, alpha)
+            run_noise = None if noise is None else (noise.get(k) or default_noise(k.suite))
+            cmp = compare(fa.samples, fb.samples, lower_is_better(fa.unit), threshold, alpha, noise=run_noise)
             changes.append(MetricChange(k, fa.unit, cmp, "both"))
         else:
             f = fa or fb
             changes.append(MetricChange(k, f.unit, None, "before only" if fa else "after only"))
     layers = None
     if before.placements and after.placements:
-        layers = compare_layers(before.placements, after.placements, threshold, alpha)
+        layers = compare_layers(before.placements, after.placements, threshold, alpha, layers_noise)
     return RunDiff(before.summary, after.summary, tuple(changes), layers, threshold, same_hardware)

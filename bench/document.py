@@ -7,7 +7,7 @@ import datetime as dt
 import json
 import math
 from pathlib import Path
-from typing import Any, Optional, Sequence
+from typing import Any, Mapping, Optional, Sequence
 
 from eaves.ceilings import latency_ceilings, memory_ceilings, stride_rows
 from eaves.errors import InputError
@@ -39,9 +39,24 @@ def figure_dict(f: Figure) -> dict[str, Any]:
     return d
 
 
+def steadiness_dict(noise) -> dict[str, Any]:
+    """A ceiling's run-to-run spread on its host (eaves.noise.RunNoise learned from history)."""
+    return {"spread_pct": 100.0 * noise.spread, "floor_pct": 100.0 * noise.floor, "runs": noise.runs}
+
+
 def run_document(run: dict[str, Any], host: dict[str, Any], figures: Sequence[Figure],
-                 placements: Sequence[PlacedLayer] = ()) -> dict[str, Any]:
-    """Everything a reader needs about one run; `run` holds uuid, host_key, times, status, tag ..."""
+                 placements: Sequence[PlacedLayer] = (), steadiness: Optional[Mapping] = None) -> dict[str, Any]:
+    """Everything a reader needs about one run; `run` holds uuid, host_key, times, status, tag ...
+    `steadiness` (eaves.noise.steadiness): each memory and latency ceiling and compute peak that has a
+    learned run-to-run spread carries it (`steadiness`, `peak_steadiness` for compute rows)."""
+    from eaves.noise import lookup
+
+    steady = steadiness or {}
+
+    def spread(suite: str, key: str = "steadiness", **fields) -> dict[str, Any]:
+        n = lookup(steady, suite, **fields) if steady else None
+        return {key: steadiness_dict(n)} if n else {}
+
     doc: dict[str, Any] = {
         "schema": DOCUMENT_SCHEMA,
         "schema_version": DOCUMENT_VERSION,
@@ -50,14 +65,17 @@ def run_document(run: dict[str, Any], host: dict[str, Any], figures: Sequence[Fi
         "ceilings": {
             "memory": [{"level": c.level, "kernel": c.kernel, "threads": c.threads, "bytes_per_s": c.bytes_per_s,
                         "variant": c.variant, "working_set_bytes": c.working_set_bytes, "cv": c.cv,
-                        **({"caution": c.caution} if c.caution else {})}
+                        **({"caution": c.caution} if c.caution else {}),
+                        **spread("memory", cache_level=c.level, kernel=c.kernel, threads=c.threads)}
                        for c in memory_ceilings(figures)],
-            "latency": [{"level": c.level, "ns_per_load": c.ns_per_load, "working_set_bytes": c.working_set_bytes}
+            "latency": [{"level": c.level, "ns_per_load": c.ns_per_load, "working_set_bytes": c.working_set_bytes,
+                         **spread("latency", cache_level=c.level)}
                         for c in latency_ceilings(figures)],
             "stride": [{"stride_bytes": r.stride_bytes, "threads": r.threads,
                         "useful_bytes_per_s": r.useful_bytes_per_s, "line_bytes_per_s": r.line_bytes_per_s,
                         "vs_sequential": r.vs_sequential} for r in stride_rows(figures)],
-            "compute": _compute_rows(figures),
+            "compute": [{**r, **spread("compute", "peak_steadiness", dtype=r["dtype"], threads=r["threads"])}
+                        for r in _compute_rows(figures)],
         },
         "figures": [figure_dict(f) for f in figures],
         # steps that gave no figure (a hang, a crash, a wrong checksum, a rate above the bound) and why

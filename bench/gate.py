@@ -2,19 +2,20 @@
 
 Each layer's efficiency (achieved over attainable) is compared sample by sample: with its counts
 and roof fixed, a sample of t seconds has efficiency `efficiency * median_seconds / t`. A layer
-fails when its efficiency fell by more than the allowed loss and the rank test says the fall is
-beyond noise (eaves.compare).
+fails when its efficiency fell by more than the allowed loss and by more than the layer's run-to-run
+floor on its host (eaves.noise), and the rank test says the fall is beyond noise (eaves.compare).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Optional, Sequence
+from typing import Callable, Mapping, Optional, Sequence
 
 from eaves.compare import DEFAULT_ALPHA, SLOWER, Comparison, compare
 from eaves.errors import InputError, StoreError
-from eaves.records import PlacedLayer
+from eaves.noise import DEFAULT_NOISE_RUNS, LAYERS, RunNoise, default_noise, layer_noise
+from eaves.records import PlacedLayer, RunSummary
 
 DEFAULT_MAX_LOSS = 0.05  # 5 % of efficiency
 LAYER_FILE_SUFFIXES = (".csv", ".json")
@@ -27,6 +28,8 @@ class LayerSet:
     source: str  # "run 1a2b3c4d" or a file path
     layers: tuple[PlacedLayer, ...]
     ceilings_run: Optional[str]
+    host_key: Optional[str] = None  # the stored run's host, or that of the roofs a file was placed under
+    run: Optional[RunSummary] = None  # the stored run (None for a file)
 
 
 @dataclass(frozen=True)
@@ -72,15 +75,18 @@ def efficiency_samples(p: PlacedLayer) -> tuple[float, ...]:
 
 
 def compare_layers(before: Sequence[PlacedLayer], after: Sequence[PlacedLayer],
-                   threshold: float = DEFAULT_MAX_LOSS, alpha: float = DEFAULT_ALPHA) -> LayerComparison:
-    """Match layers by name and judge each one's efficiency change."""
+                   threshold: float = DEFAULT_MAX_LOSS, alpha: float = DEFAULT_ALPHA,
+                   noise: Optional[Mapping[str, RunNoise]] = None) -> LayerComparison:
+    """Match layers by name and judge each one's efficiency change; `noise`: run-to-run noise per
+    layer name (a name missing from it: none), None judges by the samples and the threshold alone."""
     b = {p.layer: p for p in before}
     a = {p.layer: p for p in after}
     changes = []
     for name in (n for n in b if n in a):
         x, y = b[name], a[name]
+        run_noise = None if noise is None else (noise.get(name) or default_noise(LAYERS))
         cmp = compare(efficiency_samples(x), efficiency_samples(y), lower_is_better=False,
-                      threshold=threshold, alpha=alpha)
+                      threshold=threshold, alpha=alpha, noise=run_noise)
         counts_changed = abs(x.flops - y.flops) > 1e-9 * max(x.flops, 1.0) or \
             abs(x.bytes - y.bytes) > 1e-9 * max(x.bytes, 1.0)
         changes.append(LayerChange(name, y.kind, y.dtype, y.threads, x.seconds, y.seconds, cmp, counts_changed))
@@ -101,7 +107,7 @@ def load_layer_set(store, ref: str, model: Callable[[], object], role: str) -> L
 
         specs = read_layers(ref)
         m = model()
-        return LayerSet(ref, tuple(place_layers(specs, m)), m.run_uuid)
+        return LayerSet(ref, tuple(place_layers(specs, m)), m.run_uuid, m.host_key)
     try:
         run_id = store.resolve_run(ref)
     except StoreError as err:
@@ -112,4 +118,16 @@ def load_layer_set(store, ref: str, model: Callable[[], object], role: str) -> L
     if not run.placements:
         raise InputError(f"--{role} {ref}: run {run.summary.uuid[:8]} ({run.summary.kind}) has no placed layers "
                          "(store some with `eaves place --builtin`, or give a layer file)")
-    return LayerSet(f"run {run.summary.uuid[:8]}", run.placements, run.ceilings_run_uuid)
+    return LayerSet(f"run {run.summary.uuid[:8]}", run.placements, run.ceilings_run_uuid, run.summary.host_key,
+                    run.summary)
+
+
+def gate_noise(store, baseline: LayerSet, candidate: LayerSet, k: int = DEFAULT_NOISE_RUNS) -> dict[str, RunNoise]:
+    """Per layer the run-to-run noise on the candidate's host (else the baseline's): its newest k complete
+    layers runs started by the later stored side, the candidate's own run left out."""
+    host = candidate.host_key or baseline.host_key
+    if host is None:
+        return {}
+    starts = [s.run.started_at for s in (baseline, candidate) if s.run]
+    skip = (candidate.run.id,) if candidate.run else ()
+    return layer_noise(store, host, k, max(starts) if starts else None, skip)

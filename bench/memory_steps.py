@@ -22,6 +22,9 @@ from eaves.threads import use_threads
 from eaves.timing import TimingPolicy, sample
 
 CHECK_TOLERANCE = 1e-9
+PAGE_BYTES = 4096
+ALIAS_OFFSET = 2048  # half a page between the buffers, modulo a page: as far from aliasing as it gets
+HUGE_PAGE_BYTES = 2 << 20  # x86-64 and AArch64 (4 KiB granule) transparent huge pages (common practice)
 GATHER_MAX_LOADS = 1 << 22  # random loads per gather call: about 0.4 s from DRAM on one core
 
 
@@ -47,7 +50,8 @@ def buffers(spec: Buffers, size: int = 0) -> tuple[np.ndarray, np.ndarray]:
     if held is None or held.bytes != spec.bytes:
         _HELD.clear()
         n = spec.bytes // 8
-        _HELD.update(a=aligned_empty(n), b=aligned_empty(n // 2))
+        a = aligned_empty(n)
+        _HELD.update(a=a, b=_apart_from(a, n // 2))
         held = None
     if held != spec:
         with use_threads(spec.touch_threads):
@@ -55,6 +59,54 @@ def buffers(spec: Buffers, size: int = 0) -> tuple[np.ndarray, np.ndarray]:
             mem.first_touch(_HELD["b"], spec.touch_threads, 0.0)
         _HELD["spec"] = spec
     return _HELD["a"], _HELD["b"]
+
+
+def _apart_from(a: np.ndarray, n: int) -> np.ndarray:
+    """n float64 whose start is ALIAS_OFFSET bytes from `a`'s modulo a 4 KiB page: element i of one array
+    and element i of the other never share the low 12 address bits, so a store to one is never
+    mistaken for a load from the other (4 KiB aliasing, common practice)."""
+    raw = np.empty(8 * n + PAGE_BYTES, np.uint8)
+    shift = (a.ctypes.data + ALIAS_OFFSET - raw.ctypes.data) % PAGE_BYTES
+    return raw[shift:shift + 8 * n].view(np.float64)
+
+
+def buffer_offset(spec: Buffers) -> int:
+    """(second buffer - first buffer) modulo 4 KiB, as allocated: recorded with the run."""
+    a, b = buffers(spec)
+    return (b.ctypes.data - a.ctypes.data) % PAGE_BYTES
+
+
+@dataclass(frozen=True)
+class ChaseBuffer:
+    """The chase's own region of `bytes`, on transparent huge pages where the OS grants them."""
+
+    bytes: int
+
+
+def chase_region(spec: ChaseBuffer) -> np.ndarray:
+    """The chase's array; the bandwidth buffers are released first, so the memory cap still holds."""
+    if _HELD.get("chase_spec") != spec:
+        _HELD.clear()
+        _HELD.update(chase=huge_page_array(spec.bytes), chase_spec=spec)
+    return _HELD["chase"]
+
+
+def huge_page_array(nbytes: int) -> np.ndarray:
+    """float64 on anonymous memory aligned to 2 MiB and marked MADV_HUGEPAGE before its first touch, so a
+    kernel with transparent huge pages in "madvise" or "always" mode backs it with 2 MiB pages."""
+    import mmap
+
+    region = mmap.mmap(-1, nbytes + HUGE_PAGE_BYTES, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
+    if hasattr(mmap, "MADV_HUGEPAGE"):
+        try:
+            region.madvise(mmap.MADV_HUGEPAGE)
+        except OSError:
+            pass  # the OS refuses: 4 KiB pages, and page_sizes() says so
+    raw = np.frombuffer(region, dtype=np.uint8)
+    shift = (-raw.ctypes.data) % HUGE_PAGE_BYTES
+    out = raw[shift:shift + nbytes].view(np.float64)
+    mem.first_touch(out, 1, 0.0)
+    return out
 
 
 def touch(spec: Buffers) -> None:
@@ -153,9 +205,11 @@ def strided(spec: Buffers, size: int, stride: int, threads: int, policy: TimingP
                   extra={"line_bytes_per_s": list(timing.rates(64 * lines)), "stride_bytes": 8 * stride})
 
 
-def chase(spec: Buffers, size: int, policy: TimingPolicy, level: str) -> Figure:
+def chase(spec: ChaseBuffer, size: int, policy: TimingPolicy, level: str) -> Figure:
     """Dependent loads around a random cycle, one pointer per cache line: nanoseconds per load."""
-    a, _ = buffers(spec, size)
+    if size > spec.bytes:
+        raise ValueError(f"a working set of {size} B does not fit the {spec.bytes} B chase region")
+    a = chase_region(spec)
     n = size // 8 // 8 * 8
     nxt = a[:n].view(np.int64)
     slots = n // mem.LINE_ELEMS

@@ -73,6 +73,7 @@ class MemoryResult:
     plateaus: dict[int, list[Plateau]] = field(default_factory=dict)  # by thread count
     notes: list[str] = field(default_factory=list)
     failures: list[StepFailure] = field(default_factory=list)
+    layout: dict = field(default_factory=dict)  # how the buffers sat: offset between them, chase pages
 
 
 def dram_working_set(socket_cache_bytes: Optional[int]) -> int:
@@ -173,6 +174,9 @@ def _measure_all(plan: MemoryPlan, reported, shares, run: _Steps) -> None:
             spec = Buffers(plan.buffer_bytes, threads)
             run.run(f"first touch of {3 * plan.buffer_bytes >> 21} MiB with {threads} thread(s)", steps.touch,
                     (spec,), 0, {"suite": "setup", "threads": threads, "working_set_bytes": plan.buffer_bytes})
+            offset = run.run("buffer layout", steps.buffer_offset, (spec,), 0, {"suite": "setup"})
+            if offset is not None:
+                result.layout["buffer_offset_mod_4096"] = offset
         curves: dict[str, list[Figure]] = {}
         for kernel in sweep_kernels:
             curve = curves.setdefault(kernel.name, [])
@@ -214,14 +218,16 @@ def _measure_all(plan: MemoryPlan, reported, shares, run: _Steps) -> None:
             flat = dram_flatness(sizes, rates).note()
             if flat:
                 result.notes.append(f"x{threads}: {flat}")
+        middles = latency_sizes(capacities, plan.top_bytes)  # from the OS's sizes alone: the same every run
+        at = {p.name: level_size(p, middles.get(p.name)) for p in levels}
         for curve in curves.values():
             for p in levels:
-                ceiling = _ceiling(curve, p)
+                ceiling = _ceiling(curve, p, *at[p.name])
                 if ceiling is not None:
                     result.figures.append(_cautioned(ceiling, caution if p.name == "DRAM" else None))
         for p in levels:
             level_caution = caution if p.name == "DRAM" else None
-            size = p.sizes[representative(p) - p.first]
+            size = at[p.name][0]
             for kernel in variant_kernels:
                 f = run.bandwidth(spec, "memory", kernel, size, threads, f"{p.name} {kernel.name} ({kernel.variant}) x{threads}",
                                   level=p.name)
@@ -239,25 +245,29 @@ def _measure_all(plan: MemoryPlan, reported, shares, run: _Steps) -> None:
                                              "working_set_bytes": plan.top_bytes, "stride_elems": stride})
             if f is not None:
                 result.figures.append(_cautioned(f, caution))
+    result.figures.extend(_cautioned(f, caution) for f in _scaling(spec, plan, run, result.figures))
     if first in result.plateaus:
-        chase_sizes = latency_sizes(usable_capacities(reported, shares, 1), plan.top_bytes, result.plateaus[first])
+        # inside each OS-reported level, from the OS's sizes alone (the same in every run), on huge pages
+        chase_sizes = latency_sizes(usable_capacities(reported, shares, 1), plan.top_bytes)
         for level, size in chase_sizes.items():
             if size > plan.top_bytes:
                 result.notes.append(f"latency {level}: its working set ({_size_text(size)}) is above the sweep's top "
                                     f"({_size_text(plan.top_bytes)}): not measured")
                 continue
-            f = run.run(f"latency {level} (chase {_size_text(size)})", steps.chase, (spec, size, policy, level),
+            f = run.run(f"latency {level} (chase {_size_text(size)})", steps.chase,
+                        (steps.ChaseBuffer(plan.top_bytes), size, policy, level),
                         4 * size, {"suite": "latency", "kernel": "chase", "threads": 1, "working_set_bytes": size,
                                    "cache_level": level})
             if f is not None:
                 result.figures.append(_cautioned(f, caution if level == "DRAM" else None))
         pages = [f.extra for f in result.figures if f.suite == "latency" and "page_bytes" in f.extra]
         if pages:
-            huge = max(p.get("huge_page_share", 0.0) for p in pages)
-            result.notes.append(f"latency: the chase ran on {format_bytes(pages[-1]['page_bytes'])} pages"
-                                + (f", up to {huge:.0%} of its memory in transparent huge pages" if huge else
-                                   " (no transparent huge pages)"))
-    result.figures.extend(_cautioned(f, caution) for f in _scaling(spec, plan, run, result.figures))
+            huge = min(p.get("huge_page_share", 0.0) for p in pages)
+            result.layout["chase_huge_page_share"] = huge
+            result.notes.append("latency: the chase ran on " + (
+                f"2 MiB transparent huge pages ({huge:.0%} of its region)" if huge >= 0.9 else
+                f"{format_bytes(pages[-1]['page_bytes'])} pages ({huge:.0%} in transparent huge pages: the OS did "
+                "not grant more; TLB misses are part of the DRAM figure)"))
 
 
 def _cautioned(f: Figure, caution: Optional[str]) -> Figure:
@@ -269,23 +279,26 @@ def _with_level(f: Figure, level: Optional[str], caution: Optional[str]) -> Figu
     return _cautioned(replace(f, cache_level=level), caution if level == "DRAM" else None)
 
 
-def _ceiling(curve: list[Figure], p: Plateau) -> Optional[Figure]:
-    """The level's figure: for a cache the point of median bandwidth among the plateau's inner
-    points; for DRAM its representative point, where the variants and the latency are measured too
-    (a DRAM plateau often begins with a point still helped by the last cache). None when the
-    curve lost its points there (failed steps)."""
-    on = [f for f in curve if p.sizes[0] <= f.working_set_bytes <= p.sizes[-1]]
+def level_size(p: Plateau, wanted: Optional[int]) -> tuple[int, str]:
+    """The working set a level is measured at, the same in every run: the sweep size nearest the
+    middle of the level's OS-reported range (`wanted`, from `latency_sizes`), moved into the detected
+    plateau only when the curve disagrees with the OS; and which of the two rules chose it."""
+    if wanted is None:
+        return p.sizes[representative(p) - p.first], "middle of the detected plateau (the OS reports no size)"
+    nearest = min(p.sizes, key=lambda s: (abs(math.log2(s / wanted)), s))
+    if p.sizes[0] <= wanted <= p.sizes[-1] or p.name == "DRAM":
+        return nearest, "the sweep size nearest the middle of the level's OS-reported range"
+    return nearest, "the OS-reported middle lies outside the detected plateau: its nearest point"
+
+
+def _ceiling(curve: list[Figure], p: Plateau, size: int, rule: str) -> Optional[Figure]:
+    """The level's figure: the curve's point at the level's working set. None when that point failed."""
+    on = [f for f in curve if f.working_set_bytes == size]
     if not on:
         return None
-    if p.name == "DRAM":
-        want = p.sizes[representative(p) - p.first]
-        chosen = min(on, key=lambda f: abs(math.log2(f.working_set_bytes / want)))
-    else:
-        inner = on[1:-1] if len(on) >= 4 else on
-        chosen = sorted(inner, key=lambda f: f.median)[len(inner) // 2]
-    return replace(chosen, suite="memory", cache_level=p.name,
+    return replace(on[0], suite="memory", cache_level=p.name,
                    extra={"plateau_sizes": list(p.sizes), "edge_bytes": p.edge_bytes,
-                          "reported_bytes": p.reported_bytes})
+                          "reported_bytes": p.reported_bytes, "working_set_rule": rule})
 
 
 def _scaling(spec: Buffers, plan: MemoryPlan, run: _Steps, figures: list[Figure]) -> list[Figure]:

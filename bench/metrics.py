@@ -52,6 +52,26 @@ class MetricKey:
                 self.stride_elems or 0, self.shape or "", self.variant or "")
 
 
+@dataclass(frozen=True)
+class FigureSummary:
+    """A stored figure without its samples: enough to follow a long history quickly."""
+
+    id: int
+    run_id: int
+    suite: str
+    kernel: str
+    variant: Optional[str]
+    dtype: str
+    threads: int
+    cache_level: Optional[str]
+    stride_elems: Optional[int]
+    shape: Optional[str]
+    unit: str
+    median: float
+    q1: float
+    q3: float
+
+
 def lower_is_better(unit: str) -> bool:
     """Latency and time: lower is faster; every rate: higher is faster."""
     return unit in ("ns_per_load", "seconds")

@@ -78,29 +78,59 @@ def _facts(run: StoredRun) -> str:
     return _table(("fact", "value"), rows, left=2)
 
 
-def _ceilings(run: StoredRun) -> str:
+STEADY_HEAD = "run-to-run spread"
+
+
+def _steady(steady, suite: str, **fields) -> tuple:
+    """The run-to-run cell of one row, or no cell at all when the host has no such history."""
+    if not steady:
+        return ()
+    from eaves.noise import lookup
+
+    n = lookup(steady, suite, **fields)
+    return (f"{n.spread:.1%} ({n.runs} runs)" if n else "-",)
+
+
+def _ceilings(run: StoredRun, steady=None) -> str:
     from eaves.compute import compute_ceilings
 
     figs = run.figures
-    parts = [_table(("level", "kernel", "threads", "bandwidth", "variant", "working set", "cv"),
+    extra = (STEADY_HEAD,) if steady else ()
+    parts = [_table(("level", "kernel", "threads", "bandwidth", "variant", "working set", "cv", *extra),
                     [(c.level + (f" ({c.caution})" if c.caution else ""), c.kernel, c.threads,
                       format_rate(c.bytes_per_s, "B/s"), c.variant,
-                      format_bytes(c.working_set_bytes), f"{c.cv:.1%}") for c in memory_ceilings(figs)], left=2)]
+                      format_bytes(c.working_set_bytes), f"{c.cv:.1%}",
+                      *_steady(steady, "memory", cache_level=c.level, kernel=c.kernel, threads=c.threads))
+                     for c in memory_ceilings(figs)], left=2)]
     lat = latency_ceilings(figs)
     if lat:
-        parts.append(_table(("level", "latency", "working set"),
-                            [(c.level, f"{c.ns_per_load:.3g} ns", format_bytes(c.working_set_bytes)) for c in lat]))
+        parts.append(_table(("level", "latency", "working set", *extra),
+                            [(c.level, f"{c.ns_per_load:.3g} ns", format_bytes(c.working_set_bytes),
+                              *_steady(steady, "latency", cache_level=c.level)) for c in lat]))
     comp = compute_ceilings(figs) if any(f.suite in ("compute", "gemm") for f in figs) else []
     if comp:
-        parts.append(_table(("dtype", "threads", "multiply-add peak", "best GEMM", "GEMM shape", "native"),
+        parts.append(_table(("dtype", "threads", "multiply-add peak", "best GEMM", "GEMM shape", "native",
+                             *(("peak " + STEADY_HEAD,) if steady else ())),
                             [(c.dtype, c.threads, format_rate(c.peak_ops_per_s, "OP/s"),
-                              format_rate(c.gemm_ops_per_s, "OP/s"), c.gemm_shape or "-", "yes" if c.native else "no")
+                              format_rate(c.gemm_ops_per_s, "OP/s"), c.gemm_shape or "-", "yes" if c.native else "no",
+                              *_steady(steady, "compute", dtype=c.dtype, threads=c.threads))
                              for c in comp]))
+    if steady:
+        from eaves.noise import NOISE_MULTIPLE
+
+        parts.append(f'<p class="muted">{STEADY_HEAD}: the median change between consecutive complete surveys '
+                     f"of this host; a change between two runs counts beyond {NOISE_MULTIPLE:g}x it.</p>")
     failures = run.params.get("failures") or []
     if failures:
         parts.append("<h3>Steps that gave no figure</h3>"
                      + _table(("step", "reason"), [(f.get("label", "?"), f.get("reason", "?")) for f in failures], left=2))
     return "".join(parts)
+
+
+def _steadiness(store, s: RunSummary) -> dict:
+    from eaves.noise import steadiness
+
+    return steadiness(store, s.host_key, "survey", until=s.started_at)
 
 
 def _sweep_svg(run: StoredRun, folder: Path) -> Optional[str]:
@@ -191,7 +221,7 @@ def build_report(store, host: str, window: int = 5) -> Report:
                 f"{s.started_at:%Y-%m-%d %H:%M} UTC"
                 + (f" · layers from run {layers.summary.id} ({esc(layers.summary.uuid)})" if layers else "")
                 + "</p>",
-                "<h2>Host</h2>", _facts(survey), "<h2>Ceilings</h2>", _ceilings(survey)]
+                "<h2>Host</h2>", _facts(survey), "<h2>Ceilings</h2>", _ceilings(survey, _steadiness(store, s))]
     charts = 0
     with tempfile.TemporaryDirectory(prefix="eaves-report-") as tmp:
         folder = Path(tmp)

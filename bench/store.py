@@ -308,14 +308,17 @@ class Store:
             return session.scalar(select(Host.fingerprint).where(Host.host_key == host_key))
 
     def run_history(self, host: str, kind: str = "survey", since: Optional[dt.datetime] = None,
-                    last: Optional[int] = None) -> list[tuple[int, str, dt.datetime, Optional[str]]]:
-        """(id, uuid, started_at, tag) of a host's complete runs of one kind, oldest first;
-        `last`: only the newest that many. No figures and no counts: cheap on a long history."""
+                    last: Optional[int] = None, until: Optional[dt.datetime] = None,
+                    ) -> list[tuple[int, str, dt.datetime, Optional[str]]]:
+        """(id, uuid, started_at, tag) of a host's complete runs of one kind, oldest first, started in
+        [since, until]; `last`: only the newest that many. No figures and no counts: cheap on a long history."""
         with self._errors("cannot read"), Session(self.engine) as session:
             q = select(Run.id, Run.uuid, Run.started_at, Run.tag).join(Host).where(
                 Run.status == "complete", Run.kind == kind, (Host.host_key == host) | (Host.hostname == host))
             if since is not None:
                 q = q.where(Run.started_at >= since)
+            if until is not None:
+                q = q.where(Run.started_at <= until)
             q = q.order_by(Run.started_at.desc(), Run.id.desc())
             if last:
                 q = q.limit(last)
@@ -355,6 +358,16 @@ class Store:
                 for r in conn.execute(q):
                     unit, value = next((u, v) for u, v in zip(FIGURE_UNITS, r[10:14]) if v is not None)
                     out.append((*r[:10], unit, value, r[14], r[15]))
+        return out
+
+    def placement_seconds(self, run_ids: list[int]) -> list[tuple[int, str, float]]:
+        """(run_id, layer, seconds) of every placed layer of some runs: the layer histories the gate learns from."""
+        out = []
+        with self._errors("cannot read"), self.engine.connect() as conn:
+            for start in range(0, len(run_ids), 500):
+                q = select(Placement.run_id, Placement.layer, Placement.seconds).where(
+                    Placement.run_id.in_(run_ids[start:start + 500]))
+                out += [tuple(r) for r in conn.execute(q)]
         return out
 
     def samples_of(self, measurement_ids: list[int]) -> dict[int, tuple[float, ...]]:

@@ -59,6 +59,12 @@ def step_seconds(policy: TimingPolicy, bytes_per_call: float = 0.0, ops_per_call
     return max(MIN_STEP_SECONDS, 10 * (calibration + sampling) + (policy.samples + 6) * slow_call)
 
 
+def binding_environment(environ=os.environ) -> dict[str, str]:
+    """OpenMP's thread binding for the worker: each numba thread on its own core for the whole survey, so
+    the scheduler cannot move a thread between caches mid-sample. A user's own setting wins."""
+    return {"OMP_PROC_BIND": environ.get("OMP_PROC_BIND", "close"), "OMP_PLACES": environ.get("OMP_PLACES", "cores")}
+
+
 def _signal_name(returncode: int) -> str:
     try:
         return signal.Signals(-returncode).name
@@ -101,6 +107,7 @@ class Supervisor:
         env = dict(os.environ)
         # the worker imports what the survey imports (step functions are pickled by reference)
         env["PYTHONPATH"] = os.pathsep.join(p for p in sys.path if p)
+        env.update(binding_environment(env))
         self._proc = subprocess.Popen(
             [sys.executable, "-m", "eaves.worker", str(to_child_r), str(to_parent_w)],
             pass_fds=(to_child_r, to_parent_w), stdin=subprocess.DEVNULL, stdout=2,  # the worker never writes on our stdout (--json -)

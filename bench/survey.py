@@ -82,7 +82,14 @@ def survey_params(options: SurveyOptions) -> dict:
             "sweep_threads": list(plan.sweep_threads), "points_per_octave": plan.points_per_octave,
             "min_seconds": plan.policy.min_seconds, "samples": plan.policy.samples,
             "dtypes": list(options.dtypes) if options.dtypes else None,
-            "threading_layer": _threading_layer()}
+            "threading_layer": _threading_layer(), "thread_binding": thread_binding()}
+
+
+def thread_binding() -> dict:
+    """How the worker's threads are pinned (OpenMP binds each to its own core; other layers do not)."""
+    from eaves.supervisor import binding_environment
+
+    return binding_environment()
 
 
 def _threading_layer() -> Optional[str]:
@@ -108,6 +115,7 @@ def run_survey(host: HostFacts, options: SurveyOptions, progress: Progress = lam
                                     runner=runner, failures=outcome.failures)
             outcome.plateaus = memory.plateaus
             outcome.notes += memory.notes
+            record.params["memory_layout"] = memory.layout
             record.params["threading_layer"] = _threading_layer()
         if "compute" in options.parts:
             from eaves.compute import measure_compute

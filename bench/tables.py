@@ -107,3 +107,17 @@ def failures_table(failures: Sequence[dict], title: str = "Steps that gave no fi
         table.add_row(escape(str(f.get("label", "?"))), escape(str(f.get("reason", "?"))))
     return table
 
+
+def steadiness_table(rows: Sequence, title: str) -> Table:
+    """(MetricKey, RunNoise) rows: how far each headline ceiling moved from run to run on this host."""
+    from eaves.noise import NOISE_MULTIPLE
+
+    table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False,
+                  caption=f"spread: median change between consecutive runs; a change between two runs counts "
+                  f"beyond {NOISE_MULTIPLE:g}x it (and beyond the threshold and the samples' noise)",
+                  caption_justify="left")
+    for name in ("ceiling", "runs", "spread", "counts beyond"):
+        table.add_column(name, justify="left" if name == "ceiling" else "right", no_wrap=True)
+    for key, n in rows:
+        table.add_row(key.name(), str(n.runs), f"{n.spread:.1%}", f"{n.floor:.0%}")
+    return table

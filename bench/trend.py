@@ -2,8 +2,9 @@
 
 The baseline of a run is the median of the medians of the `window` complete survey runs before it
 that measured the same ceiling. A run drifted on a ceiling when its median moved from the
-baseline by at least the threshold and the rank test of its samples against the pooled samples
-of the baseline runs says the move is beyond noise (eaves.compare).
+baseline by at least the threshold and the ceiling's run-to-run floor (eaves.noise: learned from
+the runs before it), and the rank test of its samples against the pooled samples of the baseline
+runs says the move is beyond noise (eaves.compare).
 """
 
 from __future__ import annotations
@@ -15,7 +16,8 @@ from typing import Optional, Sequence
 
 from eaves.compare import DEFAULT_ALPHA, DEFAULT_THRESHOLD, NOISE, SLOWER, Comparison, compare
 from eaves.errors import InputError
-from eaves.metrics import CEILING_SUITES, MetricKey, ceiling_figures, lower_is_better, matches
+from eaves.metrics import CEILING_SUITES, FigureSummary, MetricKey, ceiling_figures, lower_is_better, matches
+from eaves.noise import DEFAULT_NOISE_RUNS, RunNoise, default_noise, host_noise, noise_of
 from eaves.records import Figure
 
 DEFAULT_WINDOW = 5
@@ -75,6 +77,7 @@ class Trend:
     metrics: tuple[MetricTrend, ...]
     window: int
     threshold: float
+    noise_runs: int = DEFAULT_NOISE_RUNS  # the runs before each point its run-to-run noise is learned from
 
 
 @dataclass(frozen=True)
@@ -94,65 +97,51 @@ class BaselineCheck:
         return tuple(c for c in self.changes if c[2].verdict != NOISE)
 
 
-@dataclass(frozen=True)
-class FigureSummary:
-    """A stored figure without its samples: enough to follow a long history quickly."""
-
-    id: int
-    run_id: int
-    suite: str
-    kernel: str
-    variant: Optional[str]
-    dtype: str
-    threads: int
-    cache_level: Optional[str]
-    stride_elems: Optional[int]
-    shape: Optional[str]
-    unit: str
-    median: float
-    q1: float
-    q3: float
-
-
-def _judge(baseline_medians: Sequence[float], median: float, unit: str, threshold: float) -> Optional[Comparison]:
-    """The verdict when the threshold alone settles it (the rank test cannot overturn "within noise"),
-    else None: the samples must be tested."""
+def _judge(baseline_medians: Sequence[float], median: float, unit: str, threshold: float,
+           noise: Optional[RunNoise] = None) -> Optional[Comparison]:
+    """The verdict when the threshold or the run-to-run floor alone settles it (the rank test cannot
+    overturn "within noise"), else None: the samples must be tested."""
     baseline = statistics.median(baseline_medians)
-    if abs(median - baseline) < threshold * abs(baseline):
+    if abs(median - baseline) < max(threshold, noise.floor if noise else 0.0) * abs(baseline):
         return Comparison(baseline, median, (median - baseline) / baseline if baseline else 0.0, None, "threshold",
-                          NOISE, lower_is_better(unit), len(baseline_medians), 0)
+                          NOISE, lower_is_better(unit), len(baseline_medians), 0, noise)
     return None
 
 
 def against_baseline(history: Sequence[Figure], current: Figure, threshold: float,
-                     alpha: float = DEFAULT_ALPHA) -> Optional[Comparison]:
-    """`current` against the baseline made of the figures in `history` (None if empty)."""
+                     alpha: float = DEFAULT_ALPHA, noise: Optional[RunNoise] = None) -> Optional[Comparison]:
+    """`current` against the baseline made of the figures in `history` (None if empty), held to the
+    run-to-run `noise` as well when given."""
     if not history:
         return None
     medians = [f.median for f in history]
-    quick = _judge(medians, current.median, current.unit, threshold)
+    quick = _judge(medians, current.median, current.unit, threshold, noise)
     if quick is not None:
         return quick
     pooled = [x for f in history for x in f.samples]
     return compare(pooled, current.samples, lower_is_better(current.unit), threshold, alpha,
-                   reference=statistics.median(medians))
+                   reference=statistics.median(medians), noise=noise)
 
 
 def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Optional[dt.datetime] = None,
           window: int = DEFAULT_WINDOW, threshold: float = DEFAULT_THRESHOLD, last: Optional[int] = DEFAULT_LAST,
-          alpha: float = DEFAULT_ALPHA) -> Trend:
-    """The history of each ceiling of `host` (host key or hostname), each run against its baseline.
+          alpha: float = DEFAULT_ALPHA, noise_runs: int = DEFAULT_NOISE_RUNS) -> Trend:
+    """The history of each ceiling of `host` (host key or hostname), each run against its baseline,
+    and against its run-to-run noise over the `noise_runs` runs before it (eaves.noise).
 
     Medians and quartiles come from the stored columns; samples are read only for the points whose
-    move from the baseline passes the threshold, where the rank test has to decide."""
+    move from the baseline passes the threshold and the floor, where the rank test has to decide."""
     if window < 1:
         raise InputError(f"--window: {window} must be at least 1")
-    every = store.run_history(host, "survey", last=None if since or not last else last + window)
+    if noise_runs < 1:
+        raise InputError(f"trend: noise_runs {noise_runs} must be at least 1")
+    before = max(window, noise_runs)  # earlier runs needed by the first run shown
+    every = store.run_history(host, "survey", last=None if since or not last else last + before)
     if since is not None:
         cut = next((i for i, r in enumerate(every) if r[2] >= since), len(every))
     else:
         cut = max(0, len(every) - last) if last else 0
-    earlier, shown = every[max(0, cut - window):cut], every[cut:]
+    earlier, shown = every[max(0, cut - before):cut], every[cut:]
     runs = [RunRef(*r) for r in earlier + shown]
     by_run: dict[int, list[FigureSummary]] = {r.id: [] for r in runs}
     for row in store.figure_summaries([r.id for r in runs], CEILING_SUITES):
@@ -173,12 +162,13 @@ def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Opt
             f = per_run[r.id].get(k)
             if f is None or f.unit != keys[k]:
                 continue
-            history = seen[-window:]
-            quick = _judge([h.median for h in history], f.median, f.unit, threshold) if history else None
-            if history and quick is None and i >= n_earlier:
-                to_test.update([f.id, *(h.id for h in history)])
             if i >= n_earlier:
-                rows.append((r, f, history, quick))
+                history = seen[-window:]
+                noise = noise_of([h.median for h in seen[-noise_runs:]], k.suite)
+                quick = _judge([h.median for h in history], f.median, f.unit, threshold, noise) if history else None
+                if history and quick is None:
+                    to_test.update([f.id, *(h.id for h in history)])
+                rows.append((r, f, history, quick, noise))
             seen.append(f)
         if rows:
             series.append((k, rows))
@@ -186,29 +176,31 @@ def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Opt
     metrics = []
     for k, rows in series:
         points = []
-        for r, f, history, cmp in rows:
+        for r, f, history, cmp, noise in rows:
             if history and cmp is None:
                 pooled = [x for h in history for x in samples[h.id]]
                 cmp = compare(pooled, samples[f.id], lower_is_better(f.unit), threshold, alpha,
-                              reference=statistics.median(h.median for h in history))
+                              reference=statistics.median(h.median for h in history), noise=noise)
             points.append(TrendPoint(r, f.median, f.q1, f.q3, cmp.before if cmp else None, cmp, len(history)))
         metrics.append(MetricTrend(k, keys[k], tuple(points)))
-    return Trend(host, tuple(RunRef(*r) for r in shown), tuple(metrics), window, threshold)
+    return Trend(host, tuple(RunRef(*r) for r in shown), tuple(metrics), window, threshold, noise_runs)
 
 
 def check_run(store, run_uuid: str, window: int = DEFAULT_WINDOW, threshold: float = DEFAULT_THRESHOLD,
-              alpha: float = DEFAULT_ALPHA) -> BaselineCheck:
-    """A stored survey run against the baseline of the `window` complete runs of its host before it."""
+              alpha: float = DEFAULT_ALPHA, noise_runs: int = DEFAULT_NOISE_RUNS) -> BaselineCheck:
+    """A stored survey run against the baseline of the `window` complete runs of its host before it,
+    and against each ceiling's run-to-run noise over the `noise_runs` runs before it."""
     run = store.load_run(store.resolve_run(run_uuid))
     s = run.summary
     history = [r for r in store.run_history(s.host_key, "survey") if r[0] != s.id and r[2] <= s.started_at]
     earlier = [RunRef(*r) for r in history[-window:]]
     figures = store.figures_of([r.id for r in earlier], CEILING_SUITES)
     past = [ceiling_figures(figures.get(r.id, ())) for r in earlier]
+    noise = host_noise(store, s.host_key, "survey", noise_runs, s.started_at, exclude=(s.id,))
     changes = []
     for k, f in ceiling_figures(run.figures).items():
         seen = [p[k] for p in past if k in p and p[k].unit == f.unit]
-        cmp = against_baseline(seen, f, threshold, alpha)
+        cmp = against_baseline(seen, f, threshold, alpha, noise.get(k) or default_noise(k.suite))
         if cmp is not None:
             changes.append((k, f.unit, cmp))
     return BaselineCheck(RunRef(s.id, s.uuid, s.started_at, s.tag), tuple(earlier), tuple(changes))

@@ -73,3 +73,17 @@ def fill_history(store, days: int, seed: int = 7, cv: float = 0.01, n: int = 5,
         scale = drift if drift_from is not None and d >= drift_from else None
         uuids.append(store.save_run(survey_record(history_figures(rng, n, cv, scale), d)))
     return uuids
+
+
+def wobbly(figures: list[Figure], rng: np.random.Generator, wobble: float) -> list[Figure]:
+    """Each figure scaled by its own factor drawn uniformly from [1 - wobble, 1 + wobble]: a run whose
+    medians moved from the last one the way they do between runs on a shared VM (invented test data)."""
+    return [dataclasses.replace(f, samples=tuple(x * u for x in f.samples))
+            for f, u in zip(figures, rng.uniform(1 - wobble, 1 + wobble, len(figures)))]
+
+
+def fill_wobbly_history(store, days: int, seed: int = 17, wobble: float = 0.05, cv: float = 0.01) -> list[str]:
+    """`days` surveys whose medians wobble run to run (each figure by up to +-`wobble`, so consecutive
+    runs differ by up to about twice that) while the samples inside a run stay within `cv`."""
+    rng = np.random.default_rng(seed)
+    return [store.save_run(survey_record(wobbly(history_figures(rng, cv=cv), rng, wobble), d)) for d in range(days)]

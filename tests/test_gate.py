@@ -138,3 +138,43 @@ def test_gate_fails_a_slowed_layer_and_passes_an_unchanged_one(store, tmp_path, 
                          "--run", ceilings[:8], "--max-loss", MAX_LOSS, "--json", capsys=capsys)
     doc = json.loads(text)
     assert code == 0 and doc["failed"] == [] and [r["layer"] for r in doc["layers"]] == [LAYER]
+
+
+def _timed(name, seconds, efficiency_at_1ms=0.5):
+    """A layer timed at `seconds` (five samples within 1 %) under a fixed roof."""
+    samples = tuple(seconds * f for f in (1.0, 1.01, 0.99, 1.0, 1.005))
+    return _layer(name, seconds, samples, efficiency_at_1ms * 1e-3 / seconds)
+
+
+def test_the_gate_learns_each_layers_run_to_run_noise_from_stored_layers_runs(store, capsys):
+    # Five stored layers runs in which "head" wobbles by up to +-5 % from run to run (invented data),
+    # then a candidate run where "tagger" is 25 % slower than in the last one (20 % of its efficiency
+    # lost) and "head" 8 % slower (7.4 % lost).
+    rng = np.random.default_rng(12)
+    for day in range(5):
+        wobble = rng.uniform(0.95, 1.05, 2)
+        store.save_run(layers_record([_timed("tagger", 1e-3 * wobble[0]), _timed("head", 2e-3 * wobble[1])], day))
+    store.save_run(layers_record([_timed("tagger", 1.25e-3 * wobble[0]), _timed("head", 2e-3 * wobble[1] * 1.08)], 5))
+    code, out, _ = gate(store, "--baseline", "5", "--candidate", "6", "--json", capsys=capsys)
+    doc = json.loads(out)
+    rows = {r["layer"]: r["efficiency"] for r in doc["layers"]}
+    # the candidate's run is left out of the noise it is judged against: runs 1-5
+    assert all(r["noise"]["source"] == "history" and r["noise"]["runs"] == 5 for r in rows.values())
+    head = rows["head"]
+    # head: 8 % slower is beyond the samples' noise and --max-loss 5 %, but within its own wobble
+    assert head["p_value"] < 0.05 and head["change_pct"] < -5 and head["verdict"] == "within noise"
+    assert head["noise"]["floor_pct"] > -head["change_pct"]
+    assert doc["failed"] == ["tagger"] and code == EXIT_WORSE
+    # with the samples alone (the old rule) head would have failed too
+    assert [c.layer for c in compare_layers(store.load_run(5).placements, store.load_run(6).placements).worse] \
+        == ["tagger", "head"]
+
+
+def test_too_few_layers_runs_leave_the_gate_without_a_floor_and_say_so(store, capsys):
+    store.save_run(layers_record([_timed("tagger", 1e-3)], 0))
+    store.save_run(layers_record([_timed("tagger", 1.1e-3)], 1))  # 9 % of efficiency lost
+    code, out, _ = gate(store, "--baseline", "1", "--candidate", "2", "--json", capsys=capsys)
+    (row,) = json.loads(out)["layers"]
+    # no default spread exists for layer timings (eaves.noise): threshold and rank test alone
+    assert row["efficiency"]["noise"] == {"source": "none", "spread_pct": 0.0, "floor_pct": 0.0, "runs": 1}
+    assert code == EXIT_WORSE

@@ -112,3 +112,17 @@ def test_a_stop_signal_ends_a_survey_whose_kernel_spins_within_two_seconds(tmp_p
     assert len(runs) == 1 and runs[0].status == "interrupted" and runs[0].n_figures > 0
     assert "Traceback" not in err
     assert not workers[0].is_running()  # the spinning worker went with it
+
+
+@pytest.mark.skipif(len(os.sched_getaffinity(0)) < 2, reason="pinning needs at least two usable CPUs")
+def test_the_workers_numba_threads_are_pinned_one_per_cpu():
+    from worker_probes import thread_cpus, threading_layer
+
+    with Supervisor() as sup:
+        if sup.run(Step("layer", threading_layer)) != "omp":
+            pytest.skip("numba's threading layer is not OpenMP here: OMP_PROC_BIND does not apply")
+        cpus = sup.run(Step("pinned threads", thread_cpus, (2,)))
+    # the OS's own account (/proc/self/task/*/status): at least two threads each allowed a single CPU,
+    # and not the same one
+    single = [c for c in cpus if c.isdigit()]
+    assert len(set(single)) >= 2, cpus

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Sequence
+from typing import Mapping, Optional, Sequence
 
 from rich.console import Console
 
@@ -12,8 +12,9 @@ from eaves.tables import compute_table, memory_table, stride_table
 
 
 def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, title: str,
-                   failures: Sequence[dict] = ()) -> None:
-    """Memory table, stride table and penalty, compute table, failed steps: whichever the run has."""
+                   failures: Sequence[dict] = (), steadiness: Optional[Mapping] = None) -> None:
+    """Memory table, stride table and penalty, compute table, failed steps: whichever the run has;
+    with `steadiness` (eaves.noise.steadiness) the run-to-run spread of each headline ceiling that has one."""
     if any(f.suite == "memory" for f in figures):
         console.print(memory_table(memory_ceilings(figures), latency_ceilings(figures), levels,
                                    f"Memory ceilings, {title}"))
@@ -33,6 +34,14 @@ def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, ti
                 r.native for r in rows if r.dtype in ("fp16", "bf16")):
             console.print("no native fp16/bf16 arithmetic path on this host: those rows (†) are emulated "
                           "and say how")
+    if steadiness:
+        from eaves.noise import headline
+        from eaves.tables import steadiness_table
+
+        rows = headline(steadiness, figures)
+        if rows:
+            console.print(steadiness_table(rows, f"Run-to-run spread on this host (last {max(n.runs for _, n in rows)} "
+                                                 "complete runs)"))
     if failures:
         from eaves.tables import failures_table
 

@@ -9,6 +9,7 @@ from typing import Any, Optional
 
 from eaves.compare import FASTER, SLOWER, Comparison
 from eaves.errors import InputError
+from eaves.noise import RunNoise
 from eaves.units import format_rate
 
 VERDICT_STYLE = {FASTER: "green", SLOWER: "bold red"}
@@ -40,9 +41,37 @@ def p_cell(c: Comparison) -> str:
     return "-" if c.p_value is None else f"{c.p_value:.3f}"
 
 
+def floor_cell(c: Comparison) -> str:
+    """The run-to-run floor a change had to pass, and where it came from."""
+    n = c.noise
+    if n is None or n.source == "none":
+        return "-"
+    return f"{n.floor:.0%} " + (f"({n.runs} runs)" if n.source == "history" else "default")
+
+
+def noise_dict(n: Optional[RunNoise]) -> Optional[dict[str, Any]]:
+    """Which run-to-run noise a verdict used: source (history, default, none), spread, floor, runs."""
+    if n is None:
+        return None
+    return {"source": n.source, "spread_pct": 100.0 * n.spread, "floor_pct": 100.0 * n.floor, "runs": n.runs}
+
+
+def noise_summary(comparisons, what: str = "figures") -> str:
+    """One line: how many verdicts used a learned spread, a default, or no run-to-run floor."""
+    counts = {"history": 0, "default": 0, "none": 0}
+    for c in comparisons:
+        if c is not None and c.noise is not None:
+            counts[c.noise.source] += 1
+    parts = [f"learned from this host's runs for {counts['history']} {what}" if counts["history"] else "",
+             f"provisional defaults for {counts['default']} (fewer than 3 runs)" if counts["default"] else "",
+             f"no floor for {counts['none']} (fewer than 3 runs, no default)" if counts["none"] else ""]
+    return "run-to-run noise: " + "; ".join(p for p in parts if p) if any(parts) else ""
+
+
 def comparison_dict(c: Comparison) -> dict[str, Any]:
     d = dataclasses.asdict(c)
     d["change_pct"] = c.change_pct if math.isfinite(c.change_pct) else None
+    d["noise"] = noise_dict(c.noise)
     return d
 
 

@@ -25,7 +25,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from eaves.commands._verdicts import parse_percent
-    from eaves.diff import diff_runs, resolve_ref
+    from eaves.diff import diff_noise, diff_runs, resolve_ref
     from eaves.store import Store
 
     threshold = parse_percent(args.threshold, "--threshold")
@@ -38,7 +38,8 @@ def run(args: argparse.Namespace) -> int:
     if not same and not args.allow_different_hosts:
         raise InputError(f"{args.a} is host {before.summary.host_key} and {args.b} is host {after.summary.host_key}: "
                          "different hardware; pass --allow-different-hosts to compare them anyway")
-    result = diff_runs(before, after, same, threshold)
+    noise, layers_noise = diff_noise(store, before, after)
+    result = diff_runs(before, after, same, threshold, noise=noise, layers_noise=layers_noise)
     if args.json:
         sys.stdout.write(json.dumps(_document(result), indent=2, default=str, allow_nan=False) + "\n")
     else:
@@ -72,7 +73,7 @@ def _print(d) -> None:
     from rich.markup import escape
     from rich.table import Table
 
-    from eaves.commands._verdicts import change_cell, format_value, p_cell, verdict_cell
+    from eaves.commands._verdicts import change_cell, floor_cell, format_value, noise_summary, p_cell, verdict_cell
 
     console = Console(highlight=False)
     if not console.is_terminal:
@@ -85,18 +86,21 @@ def _print(d) -> None:
     if not d.same_hardware:
         console.print("[yellow]different hardware: differences are expected[/]")
     if d.metrics:
-        t = Table(title=f"ceilings (a change counts at {d.threshold:.0%} and beyond noise)", title_justify="left",
-                  header_style="bold")
-        for col in ("ceiling", "before", "after", "change", "p", "verdict"):
+        t = Table(title=f"ceilings (a change counts beyond {d.threshold:.0%} and the run-to-run floor, and beyond "
+                  "the samples' noise)", title_justify="left", header_style="bold")
+        for col in ("ceiling", "before", "after", "change", "p", "floor", "verdict"):
             t.add_column(col, justify="left" if col in ("ceiling", "verdict") else "right")
         for m in d.metrics:
             c = m.comparison
             if c is None:
-                t.add_row(escape(m.key.name()), "-", "-", "-", "-", m.present)
+                t.add_row(escape(m.key.name()), "-", "-", "-", "-", "-", m.present)
                 continue
             t.add_row(escape(m.key.name()), format_value(c.before, m.unit), format_value(c.after, m.unit),
-                      change_cell(c), p_cell(c), verdict_cell(c))
+                      change_cell(c), p_cell(c), floor_cell(c), verdict_cell(c))
         console.print(t)
+        line = noise_summary(m.comparison for m in d.metrics)
+        if line:
+            console.print(line)
     if d.layers:
         _print_layers(console, d.layers)
     worse = d.worse
@@ -107,17 +111,20 @@ def _print_layers(console, layers, title: str = "placed layers: efficiency again
     from rich.markup import escape
     from rich.table import Table
 
-    from eaves.commands._verdicts import change_cell, format_value, p_cell, verdict_cell
+    from eaves.commands._verdicts import change_cell, floor_cell, format_value, noise_summary, p_cell, verdict_cell
 
     t = Table(title=title, title_justify="left", header_style="bold")
-    for col in ("layer", "before", "after", "eff before", "eff after", "change", "p", "verdict"):
+    for col in ("layer", "before", "after", "eff before", "eff after", "change", "p", "floor", "verdict"):
         t.add_column(col, justify="left" if col in ("layer", "verdict") else "right")
     for c in layers.changes:
         name = escape(c.layer) + (" [yellow](counts changed)[/]" if c.counts_changed else "")
         t.add_row(name, format_value(c.before_seconds, "seconds"), format_value(c.after_seconds, "seconds"),
                   format_value(c.before_efficiency, "efficiency"), format_value(c.after_efficiency, "efficiency"),
-                  change_cell(c.comparison), p_cell(c.comparison), verdict_cell(c.comparison))
+                  change_cell(c.comparison), p_cell(c.comparison), floor_cell(c.comparison), verdict_cell(c.comparison))
     console.print(t)
+    line = noise_summary((c.comparison for c in layers.changes), "layers")
+    if line:
+        console.print(line)
     for name in layers.new:
         console.print(f"new layer: {escape(name)}")
     for name in layers.vanished:

@@ -26,7 +26,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from eaves.commands._verdicts import parse_percent
-    from eaves.gate import compare_layers, load_layer_set
+    from eaves.gate import compare_layers, gate_noise, load_layer_set
     from eaves.roofline import model_from_store
     from eaves.store import Store
 
@@ -41,7 +41,7 @@ def run(args: argparse.Namespace) -> int:
 
     before = load_layer_set(store, args.baseline, model, "baseline")
     after = load_layer_set(store, args.candidate, model, "candidate")
-    result = compare_layers(before.layers, after.layers, max_loss)
+    result = compare_layers(before.layers, after.layers, max_loss, noise=gate_noise(store, before, after))
     if args.json:
         from eaves.commands._verdicts import comparison_dict
 
@@ -68,7 +68,8 @@ def _print(before, after, result) -> None:
         console = Console(width=max(console.width, 160), highlight=False)
     console.print(f"baseline: {escape(before.source)}   candidate: {escape(after.source)}")
     _print_layers(console, result, f"layers in both: efficiency against the roof "
-                                   f"(fail beyond {result.threshold:.0%} loss and beyond noise)")
+                                   f"(fail beyond {result.threshold:.0%} loss, the run-to-run floor "
+                                   "and the samples' noise)")
     if not result.changes:
         console.print("[yellow]no layer is in both sets: nothing to gate[/]")
     for c in result.worse:

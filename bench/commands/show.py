@@ -31,13 +31,16 @@ def run(args: argparse.Namespace) -> int:
         run_id = store.resolve_run(args.run)
     stored = store.load_run(run_id)
     s = stored.summary
+    from eaves.noise import steadiness
+
+    steady = steadiness(store, s.host_key, s.kind, until=s.started_at) if stored.figures else {}
     if args.json:
         import json
 
         meta = {"uuid": s.uuid, "host_key": s.host_key, "hostname": s.hostname, "kind": s.kind, "status": s.status,
                 "started_at": s.started_at, "ended_at": s.ended_at, "tag": s.tag, "note": s.note,
                 "git_describe": s.git_describe, "eaves_version": s.eaves_version, "params": stored.params}
-        doc = run_document(meta, stored.host_facts, stored.figures, stored.placements)
+        doc = run_document(meta, stored.host_facts, stored.figures, stored.placements, steady)
         sys.stdout.write(json.dumps(doc, indent=2) + "\n")
         return 0
     console = make_console()
@@ -46,5 +49,5 @@ def run(args: argparse.Namespace) -> int:
     if s.note:
         console.print(f"note: {s.note}", markup=False)
     print_ceilings(console, stored.figures, stored.params.get("levels", {}), s.uuid[:8],
-                   stored.params.get("failures") or ())
+                   stored.params.get("failures") or (), steady)
     return 0

@@ -157,7 +157,8 @@ def run(args: argparse.Namespace) -> int:
     levels = record.params.get("levels", {})
     title = f"{host.host_key()}  run {record.uuid[:8]}  ({record.status})"
     failures = record.params.get("failures") or []
-    print_ceilings(console, figures, levels, title, failures)
+    steady = _steadiness(args.db, record) if not saved.spooled else None
+    print_ceilings(console, figures, levels, title, failures, steadiness=steady)
     if outcome.interrupted_by:  # leave at once: no charts
         console.print(f"[red]interrupted by {outcome.interrupted_by}: stored as an interrupted run")
     else:
@@ -169,7 +170,7 @@ def run(args: argparse.Namespace) -> int:
     console.print(f"measured in {seconds:.1f} s; memory buffers {format_bytes(buffers)} "
                   f"(cap {format_bytes(options.budget.cap_bytes)})")
     if args.json:
-        doc = run_document(_run_meta(record, saved), record.host_facts, figures)
+        doc = run_document(_run_meta(record, saved), record.host_facts, figures, steadiness=steady)
         text = write_document(doc, args.json)
         if text is not None:
             sys.stdout.write(text + "\n")
@@ -184,6 +185,22 @@ def run(args: argparse.Namespace) -> int:
 
         return check_after_survey(console, args.db, record.uuid, spooled=saved.spooled)
     return 0
+
+
+def _steadiness(url, record):
+    """Run-to-run spread of this host's ceilings over its stored history (this run included), if any."""
+    from eaves.errors import StoreError
+    from eaves.noise import steadiness
+    from eaves.store import Store, default_url
+
+    try:
+        store = Store(url or default_url())
+        try:
+            return steadiness(store, record.host_key) or None
+        finally:
+            store.close()
+    except StoreError:
+        return None
 
 
 def _charts(console, host, figures, levels, stem: Path) -> None:

@@ -73,7 +73,7 @@ def run(args: argparse.Namespace) -> int:
 def _document(t) -> dict:
     from eaves.commands._verdicts import comparison_dict
 
-    return {"host": t.host, "window": t.window, "threshold_pct": t.threshold * 100,
+    return {"host": t.host, "window": t.window, "threshold_pct": t.threshold * 100, "noise_runs": t.noise_runs,
             "runs": [vars(r) for r in t.runs],
             "ceilings": [{"name": m.key.name(), **vars(m.key), "unit": m.unit,
                           "points": [{"run_id": p.run.id, "uuid": p.run.uuid, "started_at": p.run.started_at,
@@ -88,7 +88,7 @@ def _print(t, written) -> None:
     from rich.markup import escape
     from rich.table import Table
 
-    from eaves.commands._verdicts import change_cell, format_value, verdict_cell
+    from eaves.commands._verdicts import change_cell, floor_cell, format_value, noise_summary, verdict_cell
 
     console = Console(highlight=False)
     if not console.is_terminal:
@@ -97,9 +97,10 @@ def _print(t, written) -> None:
         console.print(f"no complete survey runs of {escape(t.host)} in this period")
         return
     console.print(f"{escape(t.host)}: {len(t.runs)} complete survey runs, {t.runs[0].started_at:%Y-%m-%d} .. "
-                  f"{t.runs[-1].started_at:%Y-%m-%d}; baseline: median of the {t.window} runs before each")
+                  f"{t.runs[-1].started_at:%Y-%m-%d}; baseline: median of the {t.window} runs before each; "
+                  f"run-to-run noise from the {t.noise_runs} runs before each")
     table = Table(title="newest run against its baseline", title_justify="left", header_style="bold")
-    for col in ("ceiling", "runs", "first", "baseline", "newest", "change", "verdict", "drifts"):
+    for col in ("ceiling", "runs", "first", "baseline", "newest", "change", "floor", "verdict", "drifts"):
         table.add_column(col, justify="left" if col in ("ceiling", "verdict") else "right")
     for m in t.metrics:
         last = m.latest
@@ -107,8 +108,12 @@ def _print(t, written) -> None:
         c = last.comparison
         table.add_row(escape(m.key.name()), str(len(m.points)), format_value(m.points[0].median, m.unit),
                       format_value(last.baseline, m.unit), format_value(last.median, m.unit),
-                      change_cell(c) if c else "-", verdict_cell(c) if c else "no baseline", str(drifts))
+                      change_cell(c) if c else "-", floor_cell(c) if c else "-",
+                      verdict_cell(c) if c else "no baseline", str(drifts))
     console.print(table)
+    line = noise_summary(m.latest.comparison for m in t.metrics)
+    if line:
+        console.print(f"newest run: {line}")
     for m in t.metrics:
         for p in m.points:
             if p.drifted:
@@ -130,7 +135,7 @@ def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
                       "`eaves push` it, then `eaves trend` shows how it compares[/]")
         return 0
 
-    from eaves.commands._verdicts import format_value
+    from eaves.commands._verdicts import floor_cell, format_value, noise_summary
     from eaves.store import Store
     from eaves.trend import check_run
 
@@ -140,10 +145,15 @@ def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
         return 0
     console.print(f"check: against the median of {len(check.baseline_runs)} earlier run(s), "
                   f"threshold {threshold:.0%}")
+    line = noise_summary(c for _, _, c in check.changes)
+    if line:
+        console.print(f"check: {line}")
     for key, unit, c in check.moved:
         style = "bold red" if c.worse else "green"
+        floor = floor_cell(c)
         console.print(f"[{style}]{c.verdict}[/]: {escape(key.name())} {format_value(c.before, unit)} -> "
-                      f"{format_value(c.after, unit)} ({c.change_pct:+.1f}%)")
+                      f"{format_value(c.after, unit)} ({c.change_pct:+.1f}%"
+                      + (f"; run-to-run floor {escape(floor)}" if floor != "-" else "") + ")")
     if check.regressions and len(check.baseline_runs) < MIN_BASELINE_RUNS:
         console.print(f"[yellow]check: the baseline has {len(check.baseline_runs)} run(s); failing on a "
                       f"regression needs {MIN_BASELINE_RUNS}, so this is reported, not failed[/]")
