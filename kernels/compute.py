@@ -23,6 +23,8 @@ from llvmlite import ir
 from numba import literally, njit, prange, types
 from numba.extending import intrinsic
 
+from eaves.kernels import target
+
 import llvmlite.binding as _ll
 
 _ll.initialize_native_asmparser()  # numba's object emitter needs it for the clock chain's inline asm
@@ -61,7 +63,7 @@ ELEM = {"f64": ir.DoubleType(), "f32": ir.FloatType(), "f16": ir.HalfType()}
 class BlockSpec:
     """What one block call computes: `accumulators` chains of `bits`-wide vectors, STEPS steps each."""
 
-    kind: str  # "fma" | "bf16dot" | "i8dot" | "i16dot" | "amx_bf16" | "amx_i8"
+    kind: str  # "fma" | "bf16dot" | "i8dot" | "i16dot" | "i8madd" | "i16madd" | "amx_bf16" | "amx_i8"
     elem: str  # accumulator element: "f64" "f32" "f16" or "i32"
     bits: int  # vector register width (AMX: the bits of one tile row)
     accumulators: int  # accumulator registers (AMX: C tiles)
@@ -80,7 +82,9 @@ class BlockSpec:
         """Multiply-adds one chain step does (per vector or tile instruction)."""
         if self.is_tile:  # M x N x K of one tile product (see TILE_ROWS)
             return TILE_ROWS * (TILE_COLSB // 4) * (TILE_COLSB // (2 if self.kind == "amx_bf16" else 1))
-        per_lane = {"fma": 1, "bf16dot": 2, "i16dot": 2, "i8dot": 4}[self.kind]
+        # i8madd counts its int8 multiplies (4 per s32 lane: one vpmaddubsw ymm does 32), not the
+        # widening vpmaddwd by 1s that sums its s16 pairs, so it counts like i8dot (vpdpbusd)
+        per_lane = {"fma": 1, "bf16dot": 2, "i16dot": 2, "i8dot": 4, "i16madd": 2, "i8madd": 4}[self.kind]
         return self.acc_lanes * per_lane
 
     @property
@@ -123,6 +127,32 @@ def _portable_dot(builder, acc, a, group, signed_a):
     return out
 
 
+# x86 integer multiply-add without VNNI (Intel's instruction set reference, from memory): pmaddubsw multiplies
+# u8 x s8 and sums adjacent pairs into saturating s16; pmaddwd multiplies s16 x s16 and sums adjacent pairs
+# into s32 (no saturation). Per register width: (pmaddubsw, pmaddwd) intrinsics.
+PMADD = {128: ("llvm.x86.ssse3.pmadd.ub.sw.128", "llvm.x86.sse2.pmadd.wd"),
+         256: ("llvm.x86.avx2.pmadd.ub.sw", "llvm.x86.avx2.pmadd.wd")}
+
+
+def _madd_step(builder, spec: BlockSpec, av, c):
+    """One chain step of the pmadd path: int16 acc + pmaddwd(a, acc); int8 acc + pmaddwd(pmaddubsw(a, acc), 1s).
+
+    The 1s come from the run-time operand `c`, so LLVM cannot fold the widening pmaddwd into other code.
+    """
+    module = builder.module
+    lanes = spec.acc_lanes
+    vec, halves = ir.VectorType(I32, lanes), ir.VectorType(ir.IntType(16), 2 * lanes)
+    ub_sw, wd = PMADD[spec.bits]
+    pmaddwd = _declare(module, wd, vec, [halves, halves])
+    if spec.kind == "i16madd":
+        return lambda acc: builder.add(acc, builder.call(pmaddwd, [av, builder.bitcast(acc, halves)]))
+    small = ir.VectorType(I8, 4 * lanes)
+    pmaddubsw = _declare(module, ub_sw, halves, [small, small])
+    ones = _splat(builder, builder.trunc(builder.fptosi(c, I32), ir.IntType(16)), halves)
+    return lambda acc: builder.add(acc, builder.call(
+        pmaddwd, [builder.call(pmaddubsw, [av, builder.bitcast(acc, small)]), ones]))
+
+
 def _step_fn(builder, spec: BlockSpec, m, c):
     """Operands that stay fixed for a block, and the function doing one chain step on one accumulator."""
     module = builder.module
@@ -131,7 +161,9 @@ def _step_fn(builder, spec: BlockSpec, m, c):
         vec = ir.VectorType(elem, spec.acc_lanes)
         conv = (lambda v: v) if spec.elem == "f64" else (lambda v: builder.fptrunc(v, elem))
         mv, cv = _splat(builder, conv(m), vec), _splat(builder, conv(c), vec)
-        fma = _declare(module, f"llvm.fma.v{spec.acc_lanes}{elem.intrinsic_name}", vec, [vec] * 3)
+        # fmuladd: one fused instruction where the target has FMA (the same vfmadd / fmla as llvm.fma), a
+        # multiply and an add where it has not; llvm.fma there becomes one libm call per lane, not a peak
+        fma = _declare(module, f"llvm.fmuladd.v{spec.acc_lanes}{elem.intrinsic_name}", vec, [vec] * 3)
         return vec, lambda acc: builder.call(fma, [acc, mv, cv])
     if spec.kind == "bf16dot":
         vec = ir.VectorType(ir.FloatType(), spec.acc_lanes)
@@ -140,10 +172,12 @@ def _step_fn(builder, spec: BlockSpec, m, c):
         fn = _declare(module, spec.intrinsic, vec, [vec, pair, pair])
         return vec, lambda acc: builder.call(fn, [acc, av, bv])
     # integer dot products: the fixed operand is a 32-bit pattern repeated, the other is the accumulator itself
-    group = 4 if spec.kind == "i8dot" else 2
+    group = 4 if spec.kind in ("i8dot", "i8madd") else 2
     vec = ir.VectorType(I32, spec.acc_lanes)
     small = ir.VectorType(ir.IntType(32 // group), spec.acc_lanes * group)
     av = builder.bitcast(_splat(builder, builder.fptosi(m, I32), vec), small)
+    if spec.kind in ("i8madd", "i16madd"):
+        return vec, _madd_step(builder, spec, av, c)
     if spec.intrinsic:
         fn = _declare(module, spec.intrinsic, vec, [vec, small, small])
         return vec, lambda acc: builder.call(fn, [acc, av, builder.bitcast(acc, small)])
@@ -455,8 +489,11 @@ def block_values(spec: BlockSpec) -> tuple[int, ...]:
         return tuple(n * (s + STEPS) for s in range(1, 9))
     if spec.kind == "bf16dot":  # acc + 1*1 + 1*1 per step
         return tuple(n * (s + 2 * STEPS) for s in range(1, 9))
-    # integers: every lane of every accumulator runs the same chain, so one int32 per seed suffices
-    group, pattern = (4, INT8_PATTERN) if spec.kind == "i8dot" else (2, INT16_PATTERN)
+    # integers: every lane of every accumulator runs the same chain, so one int32 per seed suffices.
+    # i8madd computes what i8dot does: its pmaddubsw never saturates, since the pattern's bytes are 1..4 and
+    # |a0*b0 + a1*b1| <= (3 + 4) * 128 = 896 < 2**15 for any signed bytes b (tests simulate the saturation);
+    # i16madd is i16dot (pmaddwd and vpdpwssd both wrap, neither saturates).
+    group, pattern = (4, INT8_PATTERN) if spec.kind in ("i8dot", "i8madd") else (2, INT16_PATTERN)
     small = np.int8 if group == 4 else np.int16
     a = np.array([pattern], np.int32).view(np.uint8 if group == 4 else np.int16).astype(np.int32)
     acc = np.arange(1, 9, dtype=np.int32)
@@ -513,7 +550,8 @@ def peak_expected(spec: BlockSpec, reps: int, nthreads: int) -> int:
 # The multiply-add operands the float kernels use: fma(acc, M, C) with M = C = 1 (run time values,
 # so the compiler cannot fold them); the integer kernels pass their fixed operand in M.
 OPERANDS = {"fma": (1.0, 1.0), "bf16dot": (1.0, 1.0), "i8dot": (float(INT8_PATTERN), 0.0),
-            "i16dot": (float(INT16_PATTERN), 0.0), "amx_bf16": (0.0, 0.0), "amx_i8": (0.0, 0.0)}
+            "i16dot": (float(INT16_PATTERN), 0.0), "amx_bf16": (0.0, 0.0), "amx_i8": (0.0, 0.0),
+            "i8madd": (float(INT8_PATTERN), 1.0), "i16madd": (float(INT16_PATTERN), 0.0)}
 
 
 @dataclass(frozen=True)
@@ -528,6 +566,9 @@ class PeakKernel:
     variant: str  # the path label shown with the figure
     native: bool  # True only when the dtype's own arithmetic runs in hardware
     math_bits: int  # bits of one multiply-add lane of the arithmetic actually done
+    # ISA features numba's target must not have, or LLVM compiles another kernel (with VNNI it fuses
+    # pmaddwd + paddd into vpdpwssd): the code generator's features decide, not the host's
+    lacks: tuple[str, ...] = ()
 
     @property
     def spec(self) -> BlockSpec:
@@ -551,9 +592,19 @@ class PeakKernel:
         return checksum == peak_expected(self.spec, reps, nthreads)
 
     def available(self, features, arch: str) -> bool:
+        """The host executes it (`features`), numba's target may emit it, and (tiles) Linux granted AMX."""
         if not ((self.arch is None or self.arch == arch) and all(f in features for f in self.requires)):
             return False
+        if any(target.may_emit([f]) for f in self.lacks):
+            return False
+        if not self.compilable():
+            return False
         return not self.spec.is_tile or amx_access().granted
+
+    def compilable(self) -> bool:
+        """numba's target CPU has the features and the vector width (a missing target intrinsic is a fatal
+        LLVM error that ends the process; a wider vector is split and its label would be wrong)."""
+        return target.may_emit(self.requires) and (self.spec.is_tile or self.spec.bits <= target.vector_bits())
 
 
 def _fp(dtype, elem, bits, accs, requires, arch, label, native=True, math_bits=None):
@@ -580,6 +631,17 @@ def _dot(dtype, bits, accs, requires, how):
                       f"{sizes} -> s32, portable vector IR as compiled", False, 8 if dtype == "int8" else 16)
 
 
+def _madd(dtype, bits, accs, requires):
+    """Integer multiply-add through pmaddubsw/pmaddwd (SSSE3, AVX2): native 8/16-bit products, for hosts without
+    VNNI (where the VNNI kernels stand, and LLVM would turn pmaddwd + paddd into vpdpwssd)."""
+    kind, sizes, ops = (("i8madd", "u8 x s8 -> s16 pairs -> s32", "pmaddubsw + pmaddwd + paddd") if dtype == "int8"
+                        else ("i16madd", "s16 x s16 -> s32", "pmaddwd + paddd"))
+    idx = _spec(kind, "i32", bits, accs, PMADD[bits][0 if dtype == "int8" else 1])
+    reg = {256: "ymm", 128: "xmm"}[bits]
+    return PeakKernel(f"{dtype}-madd-{bits}", dtype, idx, requires, "x86_64", f"{sizes} ({ops} {reg})", True,
+                      8 if dtype == "int8" else 16, lacks=("avx512_vnni", "avx_vnni"))
+
+
 # width, accumulators, features needed, path
 _DOTS = ((512, 16, ("avx512_vnni",), "vnni"), (256, 12, ("avx_vnni",), "vnni"), (128, 12, (), "ir"))
 _X86 = "x86_64"
@@ -604,6 +666,8 @@ REGISTRY: list[PeakKernel] = [
                ("avx512_bf16",), _X86, "bf16 pairs into fp32 (vdpbf16ps)", True, 16),
     *[_fallback(k, "bf16") for k in _F32],
     *[_dot(d, bits, accs, req, label) for d in ("int8", "int16") for bits, accs, req, label in _DOTS],
+    _madd("int8", 256, 12, ("avx2",)), _madd("int16", 256, 12, ("avx2",)),
+    _madd("int8", 128, 12, ("ssse3",)), _madd("int16", 128, 12, ("sse2",)),
     PeakKernel("bf16-amx-4x", "bf16", _spec("amx_bf16", "f32", 8 * TILE_COLSB, 4, "llvm.x86.tdpbf16ps"),
                ("amx_tile", "amx_bf16"), _X86, "AMX bf16 tiles (tdpbf16ps), bf16 pairs into fp32", True, 16),
     PeakKernel("int8-amx-4x", "int8", _spec("amx_i8", "i32", 8 * TILE_COLSB, 4, "llvm.x86.tdpbusd"),
@@ -613,16 +677,26 @@ DTYPES = ("fp64", "fp32", "fp16", "bf16", "int8", "int16")
 
 
 def kernels_for(features, arch: str, dtype: str | None = None) -> list[PeakKernel]:
-    """Registry entries this host can run (optionally of one dtype), native ones first."""
+    """Registry entries this host can run and numba's target can compile (optionally of one dtype), native first."""
     ks = [k for k in REGISTRY if k.available(features, arch) and (dtype is None or k.dtype == dtype)]
     return sorted(ks, key=lambda k: not k.native)
 
 
 def unavailable_reasons(features, arch: str, dtype: str | None = None) -> dict[str, str]:
-    """Kernels the CPU has the features for but this process may not run (AMX refused by the OS), and why."""
-    return {k.name: amx_access().reason for k in REGISTRY
-            if k.spec.is_tile and (dtype is None or k.dtype == dtype) and (k.arch is None or k.arch == arch)
-            and all(f in features for f in k.requires) and not amx_access().granted}
+    """Kernels the CPU has the features for but this process may not run, and why: AMX refused by the OS,
+    or numba's target CPU (NUMBA_CPU_NAME / NUMBA_CPU_FEATURES) cannot emit them."""
+    out = {}
+    for k in REGISTRY:
+        if not ((dtype is None or k.dtype == dtype) and (k.arch is None or k.arch == arch)
+                and all(f in features for f in k.requires)):
+            continue
+        if k.spec.is_tile and not amx_access().granted:
+            out[k.name] = amx_access().reason
+        elif not k.compilable():
+            out[k.name] = (f"numba compiles for {target.cpu_name()} (NUMBA_CPU_NAME, NUMBA_CPU_FEATURES), which "
+                           f"does not switch on {', '.join(k.requires) or 'nothing it needs'} or has vectors of "
+                           f"{target.vector_bits()} bits, not {k.spec.bits}")
+    return out
 
 
 # ---------------------------------------------------------------- what the compiler emits
@@ -642,21 +716,39 @@ def _width(operands: str) -> str:
     return f"{m.group(1)}{m.group(2)}/128" if m else "scalar"
 
 
-@functools.lru_cache(maxsize=None)
-def block_instructions(spec: BlockSpec) -> tuple[str, ...]:
-    """Multiply-add mnemonics and register widths LLVM emits for the block on this host ('vfmadd213pd zmm/512')."""
+def block_asm(spec: BlockSpec, cpu: str | None = None, features: str | None = None,
+              triple: str | None = None) -> str:
+    """The assembly LLVM emits for one block, compiled and never run.
+
+    Default: for the CPU numba compiles for (its name and feature string, see kernels.target), so the
+    instructions shown are those the survey runs; `cpu`, `features` and `triple` name another target.
+    """
     import llvmlite.binding as ll
 
-    ll.initialize_native_target()
-    ll.initialize_native_asmprinter()
+    if triple is None:
+        ll.initialize_native_target()
+        ll.initialize_native_asmprinter()
+    else:
+        ll.initialize_all_targets()
+        ll.initialize_all_asmprinters()
     module = ir.Module("probe")
-    module.triple = ll.get_process_triple()
+    module.triple = triple or ll.get_process_triple()
     fn = ir.Function(module, ir.FunctionType(I64, [ir.DoubleType()] * 3), "probe")
     builder = ir.IRBuilder(fn.append_basic_block("entry"))
     builder.ret(emit_block(builder, spec, *fn.args))
-    tm = ll.Target.from_default_triple().create_target_machine(
-        cpu=ll.get_host_cpu_name(), features=ll.get_host_cpu_features().flatten(), opt=3)
-    parsed = ll.parse_assembly(str(module))
-    asm = tm.emit_assembly(parsed)
+    machine = ll.Target.from_triple(module.triple) if triple else ll.Target.from_default_triple()
+    tm = machine.create_target_machine(cpu=cpu or target.cpu_name(),
+                                       features=target.feature_string() if features is None else features, opt=3)
+    return tm.emit_assembly(ll.parse_assembly(str(module)))
+
+
+def madd_instructions(asm: str) -> tuple[str, ...]:
+    """Multiply-add mnemonics and register widths in an assembly text ('vfmadd213pd zmm/512')."""
     return tuple(sorted({f"{m.group(1)} {_width(m.group(2))}" for m in _MADD.finditer(asm)}))
+
+
+@functools.lru_cache(maxsize=None)
+def block_instructions(spec: BlockSpec) -> tuple[str, ...]:
+    """Multiply-add mnemonics and register widths LLVM emits for the block for numba's target CPU."""
+    return madd_instructions(block_asm(spec))
 

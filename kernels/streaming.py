@@ -2,7 +2,9 @@
 
 A full cache line is written with one 64-byte vector store carrying LLVM's `nontemporal`
 metadata; x86 compiles it to movnt stores that bypass the read-for-ownership of the line.
-Destinations must be 64-byte aligned (see `aligned_empty`).
+Destinations must be 64-byte aligned (see `aligned_empty`): the store claims `align 64`, and
+vmovntpd faults on a misaligned address (SIGSEGV), so the kernels refuse one with ValueError.
+The intrinsics index the data pointer densely: they accept C-contiguous arrays only.
 """
 
 from __future__ import annotations
@@ -11,6 +13,7 @@ import numpy as np
 from llvmlite import ir
 from numba import njit, prange, types
 from numba.core import cgutils
+from numba.core.errors import TypingError
 from numba.extending import intrinsic
 
 from eaves.kernels.memory import FAST, LINE_ELEMS, _slice
@@ -22,6 +25,13 @@ def aligned_empty(n: int, dtype=np.float64, align: int = 64) -> np.ndarray:
     raw = np.empty(n * itemsize + align, dtype=np.uint8)
     offset = (-raw.ctypes.data) % align
     return raw[offset:offset + n * itemsize].view(dtype)
+
+
+def _dense(*arrays):
+    """Typing-time guard: lines and byte counts are taken from the data pointer as one dense run."""
+    for a in arrays:
+        if not (isinstance(a, types.Array) and a.ndim == 1 and a.layout == "C" and a.dtype == types.float64):
+            raise TypingError(f"streaming kernels need a C-contiguous 1-d float64 array, got {a}")
 
 
 def _line_ptr(builder, context, arrtype, arr, index):
@@ -38,6 +48,8 @@ def _nontemporal(builder, value, ptr):
 @intrinsic
 def stream_line_copy(typingctx, dst, src, i):
     """dst[i:i+8] = src[i:i+8] with a streaming store (i a multiple of 8)."""
+    _dense(dst, src)
+
     def codegen(context, builder, sig, args):
         value = builder.load(_line_ptr(builder, context, sig.args[1], args[1], args[2]), align=8)
         _nontemporal(builder, value, _line_ptr(builder, context, sig.args[0], args[0], args[2]))
@@ -48,6 +60,8 @@ def stream_line_copy(typingctx, dst, src, i):
 @intrinsic
 def stream_line_fill(typingctx, dst, i, value):
     """dst[i:i+8] = value with a streaming store (i a multiple of 8)."""
+    _dense(dst)
+
     def codegen(context, builder, sig, args):
         vec_t = ir.VectorType(ir.DoubleType(), LINE_ELEMS)
         vec = ir.Constant(vec_t, ir.Undefined)
@@ -60,16 +74,26 @@ def stream_line_fill(typingctx, dst, i, value):
 
 @intrinsic
 def store_fence(typingctx):
-    """Order streaming stores before what follows (x86 sfence)."""
+    """Order streaming stores before what follows: `fence seq_cst` (x86 mfence, AArch64 dmb ish).
+
+    Non-temporal stores are weakly ordered; the fence makes them visible before the thread's
+    slice is reported done (a release fence would emit nothing on x86 and not order them)."""
     def codegen(context, builder, sig, args):
         builder.fence("seq_cst")
         return context.get_dummy_value()
     return types.void(), codegen
 
 
+@njit(cache=True)
+def _check_aligned(a):
+    if a.ctypes.data % 64 != 0:
+        raise ValueError("streaming stores need a 64-byte aligned destination (see aligned_empty)")
+
+
 @njit(parallel=True, fastmath=FAST, cache=True)
 def fill_stream(a, reps, nthreads, base):
-    """`fill` with streaming stores; whole lines only (len(a) a multiple of 8 per thread)."""
+    """`fill` with streaming stores for whole lines, ordinary stores for a last partial line."""
+    _check_aligned(a)
     partial = np.zeros(nthreads)
     for t in prange(nthreads):
         lo, hi = _slice(t, nthreads, a.shape[0])
@@ -79,14 +103,17 @@ def fill_stream(a, reps, nthreads, base):
             v = base + r
             for k in range(lines):
                 stream_line_fill(x, k * LINE_ELEMS, v)
+            for i in range(lines * LINE_ELEMS, x.shape[0]):
+                x[i] = v
         store_fence()
-        partial[t] = x[0] + x[lines * LINE_ELEMS - 1]
+        partial[t] = x[0] + x[-1]
     return partial.sum()
 
 
 @njit(parallel=True, fastmath=FAST, cache=True)
 def copy_stream(dst, src, reps, nthreads):
-    """`copy` with streaming stores; whole lines only."""
+    """`copy` with streaming stores for whole lines, ordinary stores for a last partial line."""
+    _check_aligned(dst)
     partial = np.zeros(nthreads)
     for t in prange(nthreads):
         lo, hi = _slice(t, nthreads, src.shape[0])
@@ -96,8 +123,10 @@ def copy_stream(dst, src, reps, nthreads):
         for _ in range(reps):
             for k in range(lines):
                 stream_line_copy(d, s, k * LINE_ELEMS)
+            for i in range(lines * LINE_ELEMS, s.shape[0]):
+                d[i] = s[i]
         store_fence()
-        partial[t] = d[0] + d[lines * LINE_ELEMS - 1]
+        partial[t] = d[0] + d[-1]
     return partial.sum()
 
 
@@ -105,6 +134,8 @@ def copy_stream(dst, src, reps, nthreads):
 def _memcpy(typingctx, dst, src, nbytes):
     """Copy `nbytes` from array src to array dst with LLVM's memcpy intrinsic, which the backend
     turns into a call to the C library's memcpy for sizes it does not know."""
+    _dense(dst, src)
+
     def codegen(context, builder, sig, args):
         byte_ptr = ir.IntType(8).as_pointer()
         d = builder.bitcast(context.make_array(sig.args[0])(context, builder, args[0]).data, byte_ptr)

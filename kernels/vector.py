@@ -3,33 +3,27 @@
 numba's loops are vectorised by LLVM, which on AVX-512 hosts prefers 256-bit vectors; an
 L1-resident read then saturates the adders before the load ports. These intrinsics emit
 `UNROLL` independent full-width vectors per block instead, so the width is the hardware's.
+The width is that of the CPU numba compiles for (`target.vector_bits`), not the host's: under
+`NUMBA_CPU_FEATURES` for a narrower model a wider vector would be split (and mislabelled).
 Loads and stores claim only element alignment (any numpy array is safe); the survey's
-buffers are 64-byte aligned, so no access splits a cache line.
+buffers are 64-byte aligned, so no access splits a cache line. The intrinsics take
+C-contiguous arrays only: they index the data pointer densely, so a strided view would be
+read or written past its end.
 """
 
 from __future__ import annotations
 
-import llvmlite.binding as ll
 import numpy as np
 from llvmlite import ir
 from numba import njit, prange, types
 from numba.core import cgutils
+from numba.core.errors import TypingError
 from numba.extending import intrinsic
 
+from eaves.kernels import target
 from eaves.kernels.memory import FAST, _slice
 
-
-def host_vector_bits() -> int:
-    """Widest float vector register LLVM may use on this host (the features numba compiles for)."""
-    features = ll.get_host_cpu_features()
-    if features.get("avx512f"):
-        return 512
-    if features.get("avx"):
-        return 256
-    return 128
-
-
-VECTOR_BITS = host_vector_bits()
+VECTOR_BITS = target.vector_bits()  # of the CPU numba compiles for
 LANES = VECTOR_BITS // 64  # float64 lanes per vector
 UNROLL = 8  # independent vectors per block: covers add latency x ports on current cores
 BLOCK = LANES * UNROLL  # elements per block
@@ -54,9 +48,18 @@ def _data(context, builder, arrtype, arr):
     return context.make_array(arrtype)(context, builder, arr).data
 
 
+def _dense(*arrays):
+    """Typing-time guard: the block intrinsics index the data pointer as one dense run of float64."""
+    for a in arrays:
+        if not (isinstance(a, types.Array) and a.ndim == 1 and a.layout == "C" and a.dtype == types.float64):
+            raise TypingError(f"vector blocks need a C-contiguous 1-d float64 array, got {a}")
+
+
 @intrinsic
 def sum_blocks(typingctx, arr, nblocks):
     """Sum of the first nblocks * BLOCK elements, in UNROLL vector accumulators."""
+    _dense(arr)
+
     def codegen(context, builder, sig, args):
         base = _data(context, builder, sig.args[0], args[0])
         accs = [cgutils.alloca_once_value(builder, ir.Constant(_VEC, [0.0] * LANES)) for _ in range(UNROLL)]
@@ -79,6 +82,8 @@ def sum_blocks(typingctx, arr, nblocks):
 @intrinsic
 def fill_blocks(typingctx, arr, nblocks, value):
     """arr[:nblocks * BLOCK] = value with full-width vector stores."""
+    _dense(arr)
+
     def codegen(context, builder, sig, args):
         base = _data(context, builder, sig.args[0], args[0])
         vec = cgutils.get_null_value(_VEC)
@@ -97,6 +102,8 @@ def fill_blocks(typingctx, arr, nblocks, value):
 @intrinsic
 def copy_blocks(typingctx, dst, src, nblocks):
     """dst[:nblocks * BLOCK] = src[...] with full-width vector loads and stores."""
+    _dense(dst, src)
+
     def codegen(context, builder, sig, args):
         d = _data(context, builder, sig.args[0], args[0])
         s = _data(context, builder, sig.args[1], args[1])
@@ -113,12 +120,16 @@ def copy_blocks(typingctx, dst, src, nblocks):
 
 @intrinsic
 def axpy_blocks(typingctx, y, x, alpha, nblocks):
-    """y = alpha * x + y over nblocks * BLOCK elements with full-width fused multiply-adds."""
+    """y = alpha * x + y over nblocks * BLOCK elements with full-width (fused where possible) multiply-adds."""
+    _dense(y, x)
+
     def codegen(context, builder, sig, args):
         yp = _data(context, builder, sig.args[0], args[0])
         xp = _data(context, builder, sig.args[1], args[1])
+        # fmuladd, not fma: fused where the target has FMA, a multiply and an add where it has not
+        # (llvm.fma there becomes one libm call per lane)
         fma = cgutils.get_or_insert_function(builder.module, ir.FunctionType(_VEC, [_VEC] * 3),
-                                             f"llvm.fma.v{LANES}f64")
+                                             f"llvm.fmuladd.v{LANES}f64")
         a = cgutils.get_null_value(_VEC)
         for lane in range(LANES):
             a = builder.insert_element(a, args[2], ir.Constant(ir.IntType(32), lane))
