@@ -67,6 +67,26 @@ def _sqlite_begin(conn: Connection) -> None:
     conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get("eaves_write") else "BEGIN")
 
 
+def _is_sqlite_file(path: Path) -> bool:
+    """Whether SQLite can read the file, asked through SQLite itself (read-only). Not through open() and
+    close(): closing any descriptor of a file drops every POSIX lock this process holds on it, so the
+    store's own idle connections would lose their locks and read stale pages while another process
+    writes (seen: a run saved by a subprocess invisible to an open Store)."""
+    import sqlite3
+
+    try:
+        probe = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
+    except sqlite3.Error:
+        return False
+    try:
+        probe.execute("PRAGMA schema_version").fetchone()
+        return True
+    except sqlite3.DatabaseError:
+        return False
+    finally:
+        probe.close()
+
+
 class Store:
     """A connection to one store (SQLite file or server), with the schema in place.
 
@@ -115,9 +135,7 @@ class Store:
                 raise StoreError(f"store {path}: not a file")
             if not os.access(path, os.R_OK):
                 raise StoreError(f"store {path}: not readable")
-            with open(path, "rb") as fh:
-                head = fh.read(16)
-            if head and head != b"SQLite format 3\x00":
+            if not _is_sqlite_file(path):
                 raise StoreError(f"store {path}: not an SQLite database (left untouched)")
             return
         if not create:

@@ -316,3 +316,23 @@ def test_the_real_command_never_shows_the_password_of_eaves_db(tmp_path):
     for secret in (wrong, base.password):
         assert secret not in proc.stdout + proc.stderr
     assert list(tmp_path.iterdir()) == []  # nothing spooled or created locally
+
+
+def test_an_open_store_sees_runs_another_process_saved_after_this_process_opened_it_again(tmp_path):
+    # POSIX (fcntl(2)): closing any descriptor of a file releases every lock the process holds on it.
+    # Opening the store a second time must not cost the first Store its SQLite locks, or its idle
+    # connection reads a stale snapshot while another process writes.
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    url = f"sqlite:///{tmp_path / 'shared.db'}"
+    Store(url).save_run(record())
+    kept = Store(url)
+    assert len(kept.runs()) == 1  # leaves an idle pooled connection on the file
+    tests = str(Path(__file__).parent)
+    for n in (2, 3):
+        subprocess.run([sys.executable, "-c", f"import sys; sys.path.insert(0, {tests!r}); from eaves.store import Store; "
+                        f"from run_records import record; Store({url!r}).save_run(record())"], check=True, timeout=120)
+        assert len(Store(url).runs()) == n
+        assert len(kept.runs()) == n

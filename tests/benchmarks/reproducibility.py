@@ -76,6 +76,7 @@ def main() -> int:
             uuids.append(survey(args.db, tag))
             store = Store(args.db)
             run = store.load_run(store.resolve_run(uuids[-1]))
+            store.close()
             sizes = level_sizes(run)
             print(f"run {i + 1}/{args.runs}: {uuids[-1][:8]}, level working sets "
                   + ", ".join(f"{k} {v >> 10} KiB" for k, v in sorted(sizes.items())), flush=True)
