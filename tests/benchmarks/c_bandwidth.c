@@ -17,9 +17,17 @@ static double run(const char *k, double *a, double *b, long n, int threads, long
         long lo = (t * n / threads) / 8 * 8, hi = t == threads - 1 ? n : ((t + 1) * n / threads) / 8 * 8;
         for (long r = 0; r < reps; r++) {
             if (!strcmp(k, "read")) {
+                /* 32 independent partial sums (8 ymm or 4 zmm accumulators): one running sum would make
+                 * the loop wait for the add latency, not for memory */
+                double acc[32] = {0.0};
+                long i = lo;
+                for (; i + 32 <= hi; i += 32) {
+#pragma omp simd
+                    for (int j = 0; j < 32; j++) acc[j] += a[i + j];
+                }
                 double s = 0.0;
-#pragma omp simd reduction(+ : s)
-                for (long i = lo; i < hi; i++) s += a[i];
+                for (; i < hi; i++) s += a[i];
+                for (int j = 0; j < 32; j++) s += acc[j];
                 total += s;
             } else if (!strcmp(k, "write")) {
                 double v = 1.0 + r;
