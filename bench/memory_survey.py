@@ -219,7 +219,7 @@ def _measure_all(plan: MemoryPlan, reported, shares, run: _Steps) -> None:
             if flat:
                 result.notes.append(f"x{threads}: {flat}")
         middles = latency_sizes(capacities, plan.top_bytes)  # from the OS's sizes alone: the same every run
-        at = {p.name: level_size(p, middles.get(p.name)) for p in levels}
+        at = {p.name: level_size(p, middles.get(p.name), sizes) for p in levels}
         for curve in curves.values():
             for p in levels:
                 ceiling = _ceiling(curve, p, *at[p.name])
@@ -279,16 +279,20 @@ def _with_level(f: Figure, level: Optional[str], caution: Optional[str]) -> Figu
     return _cautioned(replace(f, cache_level=level), caution if level == "DRAM" else None)
 
 
-def level_size(p: Plateau, wanted: Optional[int]) -> tuple[int, str]:
+def level_size(p: Plateau, wanted: Optional[int], sweep_sizes: Sequence[int]) -> tuple[int, str]:
     """The working set a level is measured at, the same in every run: the sweep size nearest the
     middle of the level's OS-reported range (`wanted`, from `latency_sizes`), moved into the detected
-    plateau only when the curve disagrees with the OS; and which of the two rules chose it."""
+    plateau only when that middle lies more than an octave outside it; and which rule chose it."""
     if wanted is None:
         return p.sizes[representative(p) - p.first], "middle of the detected plateau (the OS reports no size)"
+    if p.name == "DRAM" or p.sizes[0] / 2 <= wanted <= 2 * p.sizes[-1]:
+        # within an octave of the detected plateau: a plateau's ends move with noise from run to run,
+        # the OS's sizes do not (one of ten runs cut a Zen 3 guest's L1 plateau short at 8 KiB)
+        grid = p.sizes if p.name == "DRAM" else sweep_sizes
+        return (min(grid, key=lambda s: (abs(math.log2(s / wanted)), s)),
+                "the sweep size nearest the middle of the level's OS-reported range")
     nearest = min(p.sizes, key=lambda s: (abs(math.log2(s / wanted)), s))
-    if p.sizes[0] <= wanted <= p.sizes[-1] or p.name == "DRAM":
-        return nearest, "the sweep size nearest the middle of the level's OS-reported range"
-    return nearest, "the OS-reported middle lies outside the detected plateau: its nearest point"
+    return nearest, "the OS-reported middle lies far outside the detected plateau: its nearest point"
 
 
 def _ceiling(curve: list[Figure], p: Plateau, size: int, rule: str) -> Optional[Figure]:

@@ -64,3 +64,17 @@ def test_sweep_top_overrides_the_dram_size_both_ways():
     assert large.top_bytes == 2 * GiB and not large.cache_assisted
     with pytest.raises(InputError):
         plan_memory(None, [1], MemoryBudget(cap_bytes=64 * 1024, available_bytes=GiB), True)
+
+
+def test_a_level_is_measured_at_the_same_size_when_its_plateau_is_cut_short():
+    # the OS's sizes fix the working set (the middle of L1's range, 8-32 KiB: 16 KiB); a plateau that
+    # noise ends at 8 KiB in one run must not move it, one far from the OS's range does
+    from eaves.levels import Plateau
+    from eaves.memory_survey import level_size
+
+    grid = [4096 * 2**i for i in range(8)]
+    full = Plateau("L1", 0, 3, tuple(grid[0:4]), 1e11, 30_000, 32768)
+    short = Plateau("L1", 0, 1, tuple(grid[0:2]), 1e11, 9_000, 32768)
+    far = Plateau("L1", 5, 7, tuple(grid[5:8]), 1e11, None, 32768)
+    assert level_size(full, 16384, grid)[0] == level_size(short, 16384, grid)[0] == 16384
+    assert level_size(far, 16384, grid)[0] == grid[5]
