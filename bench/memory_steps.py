@@ -229,27 +229,26 @@ def chase(spec: ChaseBuffer, size: int, policy: TimingPolicy, level: str) -> Fig
 
 def page_sizes(array: np.ndarray) -> dict:
     """Which pages back `array`, from the kernel's own account (/proc/self/smaps): the base page size and
-    how much of the mapping transparent huge pages cover. Empty where the OS does not say."""
+    how much of its mapping transparent huge pages cover. Only the base size where the OS does not say."""
     import mmap
 
     start = array.ctypes.data
-    out = {"page_bytes": mmap.PAGESIZE}
+    out: dict = {"page_bytes": mmap.PAGESIZE}
     try:
         with open("/proc/self/smaps") as f:
-            inside = False
+            inside, rss = False, 0
             for line in f:
                 head = line.split()
-                if "-" in head[0] and len(head) >= 5 and ":" not in head[0]:
+                if ":" not in head[0]:  # a mapping's first line: "lo-hi perms offset dev inode [path]"
                     lo, hi = (int(x, 16) for x in head[0].split("-"))
                     inside = lo <= start < hi
                 elif inside and head[0] == "Rss:":
                     rss = int(head[1]) * 1024
                 elif inside and head[0] == "AnonHugePages:":
                     huge = int(head[1]) * 1024
-                    out["huge_page_bytes_in_mapping"] = huge
-                    out["huge_page_share"] = round(huge / rss, 3) if rss else 0.0
+                    out.update(huge_page_bytes_in_mapping=huge, huge_page_share=round(huge / rss, 3) if rss else 0.0)
                     break
-    except (OSError, ValueError, IndexError, UnboundLocalError):
+    except (OSError, ValueError, IndexError):
         pass
     return out
 

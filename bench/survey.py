@@ -13,7 +13,7 @@ from eaves.host import HostFacts
 from eaves.levels import CacheCapacity, Plateau
 from eaves.memory_survey import MemoryPlan, measure_memory
 from eaves.records import Figure, RunRecord, StepFailure
-from eaves.supervisor import Supervisor
+from eaves.supervisor import Supervisor, binding_environment
 
 Progress = Callable[[str], None]
 # No core moves more than four full vector registers of data per cycle between its caches and
@@ -82,14 +82,7 @@ def survey_params(options: SurveyOptions) -> dict:
             "sweep_threads": list(plan.sweep_threads), "points_per_octave": plan.points_per_octave,
             "min_seconds": plan.policy.min_seconds, "samples": plan.policy.samples,
             "dtypes": list(options.dtypes) if options.dtypes else None,
-            "threading_layer": _threading_layer(), "thread_binding": thread_binding()}
-
-
-def thread_binding() -> dict:
-    """How the worker's threads are pinned (OpenMP binds each to its own core; other layers do not)."""
-    from eaves.supervisor import binding_environment
-
-    return binding_environment()
+            "threading_layer": _threading_layer(), "thread_binding": binding_environment()}
 
 
 def _threading_layer() -> Optional[str]:

@@ -69,6 +69,8 @@ def test_survey_with_compute_adds_compute_ceilings(place, capsys):
     (["--max-memory", "12 parsecs"], "unknown unit"),
     (["--max-memory", "900TiB"], "available"),
     (["--dtypes", "fp8"], "fp8"),
+    (["--step-seconds", "soon"], "--step-seconds"),
+    (["--step-seconds", "-3"], "--step-seconds"),
     (["--charts", "/etc/hostname/charts"], "--charts"),
     (["--json", "/no/such/folder/doc.json"], "--json"),
     (["--bogus"], "unrecognized"),

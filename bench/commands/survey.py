@@ -61,18 +61,17 @@ def _options(args: argparse.Namespace, host) -> SurveyOptions:
     plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, policy=policy, top_bytes=top,
                        numa_nodes=host.numa_nodes, socket_cache_bytes=host.socket_cache_bytes())
     return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts,
-                         _step_seconds(args.step_seconds))
+                         _seconds(args.step_seconds, "--step-seconds", 0, 86400) if args.step_seconds else None)
 
 
-def _step_seconds(text):
-    if text is None:
-        return None
+def _seconds(text: str, option: str, low: float, high: float) -> float:
+    """A number of seconds in (low, high], or a one-line InputError naming the option."""
     try:
         seconds = float(text)
     except ValueError:
-        raise InputError(f"--step-seconds: {text!r} is not a number") from None
-    if not 0.1 <= seconds <= 86400:
-        raise InputError(f"--step-seconds: {seconds} is outside 0.1..86400")
+        raise InputError(f"{option}: {text!r} is not a number") from None
+    if not low < seconds <= high:
+        raise InputError(f"{option}: {seconds} is outside ({low:g}, {high:g}]")
     return seconds
 
 
@@ -84,12 +83,7 @@ def _policy(args: argparse.Namespace) -> TimingPolicy:
         if not 1 <= samples <= 1000:
             raise InputError(f"--samples: {samples} is outside 1..1000")
     if args.sample_seconds:
-        try:
-            seconds = float(args.sample_seconds)
-        except ValueError:
-            raise InputError(f"--sample-seconds: {args.sample_seconds!r} is not a number") from None
-        if not 0 < seconds <= 10:
-            raise InputError(f"--sample-seconds: {seconds} is outside (0, 10]")
+        seconds = _seconds(args.sample_seconds, "--sample-seconds", 0, 10)
     return TimingPolicy(min_seconds=seconds, samples=samples)
 
 
