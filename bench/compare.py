@@ -7,7 +7,7 @@ by at least `threshold` (a fraction; the practical threshold) and by at least th
 when a `RunNoise` is given (eaves.noise: a figure moves further between runs than between the
 samples of one run). The test uses only ranks, so one
 preempted sample cannot drag it the way it drags a mean; with few samples and no ties its p-value
-is exact. See the README's "Comparing runs" for the choice and its false-alarm and power figures.
+is exact. See docs/comparing.md for the choice and its false-alarm and power figures.
 """
 
 from __future__ import annotations

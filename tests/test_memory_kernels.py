@@ -7,7 +7,7 @@ from eaves.host import collect_host_facts
 from eaves.kernels import MEMORY_KERNELS, memory as mem, thread_slices
 from eaves.kernels.streaming import aligned_empty
 from eaves.levels import CacheCapacity, detect_plateaus
-from eaves.memory_steps import Buffers, chase, strided
+from eaves.memory_steps import Buffers, ChaseWalk, chase, strided
 from eaves.threads import use_threads, usable_cpus
 from eaves.timing import TimingPolicy, sample
 
@@ -73,6 +73,25 @@ def test_dram_latency_is_above_l1_latency(buffers):
     l1 = chase(held, 16 * 1024, TINY, "L1").best
     dram = chase(held, DRAM_BYTES, TINY, "DRAM").best
     assert dram > 5 * l1
+
+
+def test_the_chase_walks_on_around_its_cycle_from_call_to_call():
+    # A timed call that restarted at the same slot would walk the same first lines every sample, which
+    # the last-level cache then holds, and a "DRAM" latency would be the L3's. Each call must start where
+    # the last one ended, so samples together visit distinct lines until the cycle comes round.
+    slots = 1000
+    nxt = np.zeros(slots * mem.LINE_ELEMS, dtype=np.int64)
+    order = np.random.default_rng(3).permutation(slots).astype(np.int64)
+    mem.build_cycle(nxt, order, mem.LINE_ELEMS)
+    walk = ChaseWalk(nxt, order)
+    ends = []
+    for _ in range(4):
+        got, want = walk(150)
+        assert got == want  # the checksum: where the cycle says 150 more loads end
+        ends.append(got)
+    assert len(set(ends)) == 4
+    assert ends == [int(order[150 * (i + 1)]) * mem.LINE_ELEMS for i in range(4)]
+    assert walk(650)[0] == int(order[(600 + 650) % slots]) * mem.LINE_ELEMS  # round the cycle and on
 
 
 def test_strided_useful_bandwidth_falls_as_the_stride_grows_to_a_line(buffers):
