@@ -25,7 +25,7 @@ def _store_for_this_host(path, scale: float = 1.0) -> str:
     return store.url
 
 
-STREAM_TEST = """
+VECTOR_ADD_TEST = """
 import numpy as np
 
 a = np.ones(1 << 16); b = np.ones(1 << 16); c = np.empty(1 << 16)
@@ -40,7 +40,7 @@ def test_add_stays_near_its_roof(near_roof):
 
 def test_fixture_passes_when_the_callable_is_near_enough(pytester, tmp_path):
     url = _store_for_this_host(tmp_path / "s.db")
-    pytester.makepyfile(STREAM_TEST.format(min_eff=1e-4))
+    pytester.makepyfile(VECTOR_ADD_TEST.format(min_eff=1e-4))
     result = pytester.runpytest_subprocess("--eaves-db", url, "-p", "no:cacheprovider")
     result.assert_outcomes(passed=1)
 
@@ -48,7 +48,7 @@ def test_fixture_passes_when_the_callable_is_near_enough(pytester, tmp_path):
 def test_fixture_fails_with_the_efficiency_it_found(pytester, tmp_path):
     # roofs a thousand times above anything this host reaches: far below the required fraction
     url = _store_for_this_host(tmp_path / "s.db", scale=1000.0)
-    pytester.makepyfile(STREAM_TEST.format(min_eff=0.5))
+    pytester.makepyfile(VECTOR_ADD_TEST.format(min_eff=0.5))
     result = pytester.runpytest_subprocess("--eaves-db", url, "-p", "no:cacheprovider")
     result.assert_outcomes(failed=1)
     result.stdout.fnmatch_lines(["*of its memory roof*below the required 50.0%*"])
@@ -56,7 +56,7 @@ def test_fixture_fails_with_the_efficiency_it_found(pytester, tmp_path):
 
 def test_no_stored_survey_is_an_error_with_the_way_out(pytester, tmp_path):
     empty = Store(f"sqlite:///{tmp_path / 'empty.db'}").url
-    pytester.makepyfile(STREAM_TEST.format(min_eff=0.1))
+    pytester.makepyfile(VECTOR_ADD_TEST.format(min_eff=0.1))
     result = pytester.runpytest_subprocess("--eaves-db", empty, "-p", "no:cacheprovider")
     result.assert_outcomes(errors=1)  # never a silent pass
     lines = [line for line in result.stdout.lines if "no stored survey" in line]
