@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import importlib
 import json
-import math
 import statistics
 import warnings
 from dataclasses import dataclass
@@ -303,9 +302,3 @@ def write_layer_file(profile: TorchProfile, path: str | Path) -> Path:
         raise InputError(f"--layers-out {path}: cannot write: {err.strerror}") from None
     return path
 
-
-def total_flops(profile: TorchProfile) -> float:
-    """FLOPs of one pass over every counted layer (the analyzer's calculator)."""
-    from eaves.layers import count
-
-    return math.fsum(count(s).flops for s in profile.layers)
