@@ -25,7 +25,7 @@ def _pyplot():
 
     plt.rcParams.update({"font.size": 9, "axes.edgecolor": INK, "axes.labelcolor": INK,
                          "xtick.color": INK, "ytick.color": INK, "svg.hashsalt": "eaves",
-                         "svg.fonttype": "none"})
+                         "svg.fonttype": "none", "text.parse_math": False})  # names are text, never mathtext
     return plt
 
 

@@ -6,11 +6,9 @@ import dataclasses
 import datetime as dt
 import json
 import math
-from pathlib import Path
 from typing import Any, Mapping, Optional, Sequence
 
 from eaves.ceilings import latency_ceilings, memory_ceilings, stride_rows
-from eaves.errors import InputError
 from eaves.records import Figure, PlacedLayer
 
 DOCUMENT_SCHEMA = "eaves.run"
@@ -103,28 +101,12 @@ def _compute_rows(figures: Sequence[Figure]) -> list[dict[str, Any]]:
 
 
 def write_document(doc: dict[str, Any], path: str) -> Optional[str]:
-    """Write to a file, or return the text when `path` is '-' (the caller prints it)."""
+    """Write to a file (eaves.outfile: through symlinks, into devices, atomically for a regular file),
+    or return the text when `path` is '-' (the caller prints it)."""
     text = json.dumps(doc, indent=2, sort_keys=False)
     if path == "-":
         return text
-    target = Path(path)
-    try:
-        tmp = target.with_name(target.name + ".part")
-        tmp.write_text(text + "\n")
-        tmp.replace(target)
-    except OSError as err:
-        raise InputError(f"--json {path}: cannot write: {err.strerror}") from err
+    from eaves.outfile import write_text
+
+    write_text(path, text + "\n", "--json")
     return None
-
-
-def check_writable(path: Optional[str], option: str) -> None:
-    """Refuse an output path whose folder is missing or read-only, before any measurement."""
-    import os
-
-    if not path or path == "-":
-        return
-    folder = Path(path).resolve().parent
-    if not folder.is_dir():
-        raise InputError(f"{option} {path}: folder {folder} does not exist")
-    if not os.access(folder, os.W_OK):
-        raise InputError(f"{option} {path}: folder {folder} is not writable")

@@ -15,7 +15,9 @@ Use in the survey (main thread only, as Python's signal handlers are):
 from __future__ import annotations
 
 import contextlib
+import os
 import signal
+import sys
 import threading
 from dataclasses import dataclass
 from typing import Iterator, Optional
@@ -53,6 +55,46 @@ def _handlers(handler, signals=STOP_SIGNALS) -> Iterator[None]:
     finally:
         for s, h in previous.items():
             signal.signal(s, h)
+
+
+def install() -> dict:
+    """Make SIGTERM end the process the way Ctrl-C does (a KeyboardInterrupt: exit 130, one message);
+    the CLI calls it first thing, so start-up is covered too. Returns the handlers it replaced."""
+    if threading.current_thread() is not threading.main_thread():
+        return {}
+    return {s: signal.signal(s, _raise_stop) for s in STOP_SIGNALS}
+
+
+def restore(previous: dict) -> None:
+    """Put back the handlers `install` (or `hold`) replaced."""
+    for s, h in previous.items():
+        signal.signal(s, h)
+
+
+def hold() -> dict:
+    """Ignore further stop signals (while the interrupted message is printed); returns the handlers replaced."""
+    if threading.current_thread() is not threading.main_thread():
+        return {}
+    return {s: signal.signal(s, signal.SIG_IGN) for s in STOP_SIGNALS}
+
+
+def exit_on_stop(code: int, message: str) -> None:
+    """After the command returned: a stop signal now prints `message` and ends the process with `code`
+    at once (Python's own shutdown is no place for a KeyboardInterrupt). Output is flushed first."""
+    for stream in (sys.stdout, sys.stderr):
+        with contextlib.suppress(Exception):
+            stream.flush()
+
+    def leave(_signum, _frame) -> None:
+        with contextlib.suppress(Exception):
+            sys.stdout.flush()
+        with contextlib.suppress(OSError):
+            os.write(2, (message + "\n").encode())
+        os._exit(code)
+
+    if threading.current_thread() is threading.main_thread():
+        for s in STOP_SIGNALS:
+            signal.signal(s, leave)
 
 
 @contextlib.contextmanager

@@ -200,6 +200,19 @@ KINDS: dict[str, Kind] = {k.name: k for k in (
 # Shape parameters that may be zero (everything else must be a positive whole number).
 ZERO_OK = frozenset({"padding"})
 
+# What a layer file may say, so every rate, intensity and JSON value derived from it stays finite.
+MIN_SECONDS = 1e-12  # a time must be above this: no layer runs in under a picosecond (a unit mistake)
+MAX_SECONDS = 86400.0  # and below one day
+MAX_WHOLE = 2**53  # shape values, batch, threads: below it a float holds every whole number exactly (IEEE 754 binary64)
+MIN_COUNT, MAX_COUNT = 1, 2**63  # FLOPs and bytes, given or counted from the shape: at least one, below 2**63
+
+
+def exact_counts(kind: str, shape: Mapping[str, int], dtype: str) -> tuple[int, int]:
+    """(FLOPs, bytes) of a countable shape as exact integers, to check against MAX_COUNT before any
+    float conversion (a product of large shape values can exceed the float range)."""
+    t = KINDS[kind].tally(full_shape(kind, shape))
+    return t.flops, (t.weights + t.inputs + t.outputs) * DTYPE_BYTES[dtype] + t.fixed_bytes
+
 
 def full_shape(kind: str, shape: Mapping[str, int]) -> dict[str, int]:
     """The shape with the kind's defaults filled in."""

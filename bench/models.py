@@ -11,11 +11,19 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
 # The alembic revision this eaves writes and expects (bench/migrations/versions); a test checks
 # it is the head of the migration scripts. SCHEMA_VERSION counts the revisions.
-SCHEMA_REVISION = "0002"
-SCHEMA_VERSION = 2
+SCHEMA_REVISION = "0003"
+SCHEMA_VERSION = 3
+
+# Strings are Text on every backend (PostgreSQL refused a VARCHAR(64) GEMM label that SQLite kept).
+# A bound stays only where it is part of the data (a UUID's 36 characters) or where an index needs
+# it: PostgreSQL refuses a btree entry above 2704 bytes (a third of an 8 KiB page, PostgreSQL docs,
+# "index row size exceeds maximum"), and 256 characters are at most 1024 bytes of UTF-8, so the two
+# indexed text columns of one index fit. run_rows.check_fits refuses longer values before any write.
+INDEXED_TEXT_CHARS = 256
 
 intpk = Annotated[int, mapped_column(Integer, primary_key=True, autoincrement=True)]
-name64 = Annotated[str, mapped_column(String(64))]
+plain_text = Annotated[str, mapped_column(Text)]
+indexed_text = Annotated[str, mapped_column(Text, info={"max_chars": INDEXED_TEXT_CHARS})]
 opt_float = Annotated[Optional[float], mapped_column(Float, nullable=True)]
 opt_text = Annotated[Optional[str], mapped_column(Text, nullable=True)]
 
@@ -37,9 +45,9 @@ class Host(Base):
 
     __tablename__ = "hosts"
     id: Mapped[intpk]
-    host_key: Mapped[str] = mapped_column(String(200), unique=True)
-    hostname: Mapped[str] = mapped_column(String(200), index=True)
-    fingerprint: Mapped[name64]
+    host_key: Mapped[str] = mapped_column(Text, unique=True, info={"max_chars": INDEXED_TEXT_CHARS})
+    hostname: Mapped[str] = mapped_column(Text, index=True, info={"max_chars": INDEXED_TEXT_CHARS})
+    fingerprint: Mapped[plain_text]
     facts: Mapped[dict[str, Any]]
     first_seen: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     runs: Mapped[list["Run"]] = relationship(back_populates="host")
@@ -52,16 +60,16 @@ class Run(Base):
     id: Mapped[intpk]
     uuid: Mapped[str] = mapped_column(String(36), unique=True, default=new_uuid)
     host_id: Mapped[int] = mapped_column(ForeignKey("hosts.id"), index=True)
-    kind: Mapped[str] = mapped_column(String(16), default="survey")  # survey | layers
+    kind: Mapped[str] = mapped_column(Text, default="survey")  # survey | layers
     started_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     ended_at: Mapped[Optional[dt.datetime]] = mapped_column(DateTime(timezone=True), nullable=True)
-    status: Mapped[str] = mapped_column(String(16))  # complete | interrupted | failed
-    eaves_version: Mapped[str] = mapped_column(String(32))
+    status: Mapped[plain_text]  # complete | interrupted | failed
+    eaves_version: Mapped[plain_text]
     params: Mapped[dict[str, Any]]
     facts: Mapped[dict[str, Any]]  # host facts as read when the run started (load, governor ...)
-    tag: Mapped[Optional[str]] = mapped_column(String(100), nullable=True, index=True)
+    tag: Mapped[opt_text]  # no index: never searched, and a long tag would not fit one
     note: Mapped[opt_text]
-    git_describe: Mapped[Optional[str]] = mapped_column(String(200), nullable=True)
+    git_describe: Mapped[opt_text]
     ceilings_run_uuid: Mapped[Optional[str]] = mapped_column(String(36), nullable=True)
     host: Mapped[Host] = relationship(back_populates="runs")
     measurements: Mapped[list["Measurement"]] = relationship(
@@ -78,15 +86,15 @@ class Measurement(Base):
     __tablename__ = "measurements"
     id: Mapped[intpk]
     run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), index=True)
-    suite: Mapped[str] = mapped_column(String(16))  # memory | latency | stride | compute | gemm | clock
-    kernel: Mapped[name64]
-    variant: Mapped[Optional[str]] = mapped_column(String(64), nullable=True)  # path / width label
-    dtype: Mapped[str] = mapped_column(String(16))
+    suite: Mapped[indexed_text]  # memory | latency | stride | compute | gemm | clock
+    kernel: Mapped[indexed_text]
+    variant: Mapped[opt_text]  # path / width label
+    dtype: Mapped[plain_text]
     threads: Mapped[int] = mapped_column(Integer)
     working_set_bytes: Mapped[Optional[int]] = mapped_column(BigInteger, nullable=True)
-    cache_level: Mapped[Optional[str]] = mapped_column(String(8), nullable=True)
+    cache_level: Mapped[opt_text]
     stride_elems: Mapped[Optional[int]] = mapped_column(Integer, nullable=True)
-    shape: Mapped[Optional[str]] = mapped_column(String(64), nullable=True)  # GEMM MxNxK
+    shape: Mapped[opt_text]  # GEMM MxNxK
     bytes_per_s: Mapped[opt_float]
     ops_per_s: Mapped[opt_float]
     ns_per_load: Mapped[opt_float]
@@ -110,9 +118,9 @@ class Placement(Base):
     __tablename__ = "placements"
     id: Mapped[intpk]
     run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), index=True)
-    layer: Mapped[str] = mapped_column(String(200))
-    kind: Mapped[str] = mapped_column(String(32))
-    dtype: Mapped[str] = mapped_column(String(16))
+    layer: Mapped[plain_text]
+    kind: Mapped[plain_text]
+    dtype: Mapped[plain_text]
     threads: Mapped[int] = mapped_column(Integer)
     batch: Mapped[Optional[int]] = mapped_column(Integer, nullable=True)
     seconds: Mapped[float] = mapped_column(Float)  # median
@@ -124,7 +132,18 @@ class Placement(Base):
     bytes_per_s: Mapped[float] = mapped_column(Float)
     attainable_flops_per_s: Mapped[float] = mapped_column(Float)
     efficiency: Mapped[float] = mapped_column(Float)
-    bound: Mapped[str] = mapped_column(String(16))  # memory | compute | impossible
-    roof: Mapped[str] = mapped_column(String(64))
+    bound: Mapped[plain_text]  # memory | compute | impossible
+    roof: Mapped[plain_text]
     extra: Mapped[dict[str, Any]]
     run: Mapped[Run] = relationship(back_populates="placements")
+
+
+class Quarantined(Base):
+    """A spooled run the store refused for its content: it stays in the spool, and push skips it."""
+
+    __tablename__ = "quarantine"
+    id: Mapped[intpk]
+    run_uuid: Mapped[str] = mapped_column(String(36), ForeignKey("runs.uuid", ondelete="CASCADE"), unique=True)
+    reason: Mapped[plain_text]  # the store's own words, one line
+    refused_by: Mapped[plain_text]  # the store's URL, password hidden
+    refused_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)

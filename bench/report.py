@@ -1,8 +1,9 @@
 """One self-contained HTML page about a host: facts, ceilings, sweep, roofline, trends, runs.
 
 No network and no script: charts are SVG embedded as data URIs, styles inline. Every string that
-came from a person or a file (hostnames, tags, notes, layer names, host facts) goes through
-html.escape; SVG text is escaped by matplotlib's SVG writer.
+came from a person or a file (hostnames, tags, notes, layer names, host facts) goes through `esc`:
+control characters spelled out (eaves.plain.visible), then html.escape; SVG text is escaped by
+matplotlib's SVG writer.
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ from typing import Any, Optional, Sequence
 
 from eaves.ceilings import latency_ceilings, memory_ceilings
 from eaves.errors import InputError
+from eaves.plain import visible
 from eaves.records import PlacedLayer, RunSummary, StoredRun
 from eaves.units import format_bytes, format_rate
 
@@ -49,7 +51,8 @@ class Report:
 
 
 def esc(value: Any) -> str:
-    return html.escape("" if value is None else str(value), quote=True)
+    """Text for HTML: control characters as visible escapes, then <, >, &, quotes as entities."""
+    return html.escape(visible(value), quote=True)
 
 
 def svg_img(svg: str, alt: str) -> str:
@@ -143,7 +146,7 @@ def _sweep_svg(run: StoredRun, folder: Path) -> Optional[str]:
     caps = [CacheCapacity(f"L{c['level']}", int(c["size_bytes"])) for c in facts.get("caches") or []
             if c.get("kind") != "instruction" and c.get("size_bytes") and c.get("level")]
     paths = bandwidth_chart(run.figures, run.params.get("levels", {}), caps, folder / "sweep",
-                            f"{run.summary.hostname}: bandwidth by working set")
+                            f"{visible(run.summary.hostname)}: bandwidth by working set")
     return paths[1].read_text(encoding="utf-8")
 
 

@@ -38,6 +38,9 @@ def draw_chart(model: HostModel, placed: Sequence[PlacedLayer], path: str | Path
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from eaves.plain import visible
+
+    plt.rcParams["text.parse_math"] = False  # layer and host names are text: a "$" never starts mathtext
     t = _threads_shown(model, placed, threads)
     memory = model.memory_roofs(t)
     measured_t = memory[0].threads if memory else t
@@ -84,14 +87,15 @@ def draw_chart(model: HostModel, placed: Sequence[PlacedLayer], path: str | Path
                    rasterized=len(shown) > 2000)  # thousands of SVG markers are slow to write and to view
     worst = sorted(shown, key=lambda p: (p.bound != "impossible", p.efficiency))[:WORST_LABELLED]
     for i, p in enumerate(worst):
-        ax.annotate(p.layer + (" (impossible)" if p.bound == "impossible" else f" {p.efficiency:.1%}"),
+        ax.annotate(visible(p.layer) + (" (impossible)" if p.bound == "impossible" else f" {p.efficiency:.1%}"),
                     (p.flops_per_byte, p.flops_per_s), xytext=(6, 7 - 11 * i), textcoords="offset points",
                     arrowprops=dict(arrowstyle="-", color=GRID, linewidth=0.6),
                     fontsize=7, color=INK)
     ax.set_xlabel("operational intensity (FLOP per byte of compulsory traffic)", color=INK)
     ax.set_ylabel("FLOP/s", color=INK)
     ax.tick_params(colors=INK, labelsize=8)
-    ax.set_title(title or f"{model.host_key} · run {model.run_uuid[:8]} · {measured_t} thread(s)",
+    ax.set_title(visible(title) if title else
+                 f"{visible(model.host_key)} · run {model.run_uuid[:8]} · {measured_t} thread(s)",
                  loc="left", fontsize=10, color=INK)
     if shown:
         ax.legend(loc="lower right", fontsize=7, frameon=False, title="layer kind", title_fontsize=7)

@@ -14,6 +14,7 @@ from eaves.models import SCHEMA_REVISION, Base
 MIGRATIONS = Path(__file__).parent / "migrations"
 VERSION_TABLE = "alembic_version"
 FIRST_REVISION = "0001"
+FIRST_TABLES = {"hosts", "runs", "measurements", "placements"}  # what a store of FIRST_REVISION holds
 # Arbitrary constant key of the PostgreSQL advisory lock that serialises schema changes.
 _PG_SCHEMA_LOCK = 0x6561766573
 
@@ -56,10 +57,9 @@ def current_revision(conn: Connection) -> Optional[str]:
         if len(rows) == 1:
             return rows[0]
         raise StoreError(f"schema version table holds {len(rows)} rows, expected 1")
-    ours = set(Base.metadata.tables)
     if not tables:
         return None
-    if ours <= tables:
+    if FIRST_TABLES <= tables:
         return FIRST_REVISION
     raise StoreError("not an eaves store: it holds other tables (left untouched)")
 
@@ -106,4 +106,9 @@ def upgrade(conn: Connection) -> tuple[Optional[str], str]:
     if before == FIRST_REVISION and VERSION_TABLE not in inspect(conn).get_table_names():
         command.stamp(cfg, FIRST_REVISION)
     command.upgrade(cfg, SCHEMA_REVISION)
+    if conn.dialect.name == "sqlite":  # table rebuilds ran with foreign keys off: prove they still hold
+        broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+        if broken:
+            raise StoreError(f"migration left {len(broken)} broken reference(s), e.g. in table {broken[0][0]}; "
+                             f"nothing was changed")
     return before, SCHEMA_REVISION

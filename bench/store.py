@@ -6,21 +6,23 @@ import contextlib
 import datetime as dt
 import os
 import random
+import re
 import time
 from pathlib import Path
 from typing import Callable, Iterator, Optional, TypeVar
 from urllib.parse import quote, quote_plus
 
 from sqlalchemy import create_engine, event, func, select
-from sqlalchemy.engine import Connection, Engine, make_url
-from sqlalchemy.exc import ArgumentError, DatabaseError, IntegrityError, OperationalError
+from sqlalchemy.engine import URL, Connection, Engine, make_url
+from sqlalchemy.exc import (ArgumentError, DatabaseError, DataError, DBAPIError, IntegrityError,
+                            OperationalError, StatementError)
 from sqlalchemy.orm import Session, selectinload
 
 from eaves import schema
 from eaves.errors import StoreError
 from eaves.models import SCHEMA_REVISION, Host, Measurement, Placement, Run, new_uuid
-from eaves.timing import coefficient_of_variation, quartiles
-from eaves.records import FIGURE_UNITS, Figure, PlacedLayer, RunRecord, RunSummary, StoredRun
+from eaves.records import FIGURE_UNITS, Figure, RunRecord, RunSummary, StoredRun
+from eaves.run_rows import RunRefused, figure_of, placed_of, record_rows, write_rows
 
 DEFAULT_DB_PATH = Path("results") / "eaves.db"
 CONNECT_TIMEOUT_SECONDS = 10  # a server that does not answer within this is unreachable
@@ -36,19 +38,37 @@ def default_url() -> str:
     return os.environ.get("EAVES_DB") or f"sqlite:///{DEFAULT_DB_PATH}"
 
 
+URL_NOT_SHOWN = "<URL not shown: it cannot be parsed>"
+_SCHEME = re.compile(r"[A-Za-z][A-Za-z0-9+.-]*")  # a URL scheme (RFC 3986, section 3.1)
+
+
+def parse_url(url: str) -> URL:
+    """SQLAlchemy's reading of a store URL; ValueError also when that reading is ambiguous: a
+    password followed by another "@" (an unescaped @ in the password, whose rest would be read as
+    the host or database: percent-encode it as %40), or a port that is not a number."""
+    parsed = make_url(url)  # ArgumentError (not a URL), ValueError (the port is not a number)
+    if parsed.password is not None and url.split("://", 1)[-1].count("@") > 1:
+        raise ValueError("more than one @ after the scheme of a URL with a password")
+    return parsed
+
+
 def mask_url(url: str) -> str:
-    """The URL with its password replaced, for anything shown to a person or written to a file."""
+    """The URL with its password (and any password=... query value) replaced, for anything shown to a
+    person or written to a file; an unparsable URL shows only its scheme and a placeholder."""
     try:
-        return make_url(url).render_as_string(hide_password=True)
-    except ArgumentError:
-        return "<unparsable store URL>"
+        parsed = parse_url(url)
+    except (ArgumentError, ValueError, TypeError):
+        scheme = str(url).split("://", 1)[0] if "://" in str(url) else ""
+        return (f"{scheme}://" if _SCHEME.fullmatch(scheme) else "") + URL_NOT_SHOWN
+    query = {k: "hidden" if "password" in k.lower() else v for k, v in parsed.query.items()}
+    return parsed.set(query=query).render_as_string(hide_password=True)
 
 
 def is_server_url(url: str) -> bool:
     """True for a database server (reached over a network), False for SQLite or an unusable URL."""
     try:
         return make_url(url).get_backend_name() != "sqlite"
-    except ArgumentError:
+    except (ArgumentError, ValueError):  # ValueError: a port that is not a number
         return False
 
 
@@ -99,8 +119,8 @@ class Store:
         self.url = url or default_url()
         self.shown_url = mask_url(self.url)
         try:
-            parsed = make_url(self.url)
-        except ArgumentError:
+            parsed = parse_url(self.url)
+        except (ArgumentError, ValueError):
             raise StoreError(f"store {self.shown_url}: not a database URL (example: sqlite:///results/eaves.db)") from None
         self._secrets = _secrets_of(parsed.password)
         self.is_sqlite = parsed.get_backend_name() == "sqlite"
@@ -178,10 +198,21 @@ class Store:
             return schema.current_revision(conn)
 
     def upgrade_schema(self) -> tuple[Optional[str], str]:
-        """Migrate the store to the schema this eaves uses; returns (revision before, after)."""
+        """Migrate the store to the schema this eaves uses; returns (revision before, after).
+
+        SQLite: with foreign keys off (set outside the transaction, where SQLite takes it), since a
+        migration rebuilds tables and dropping `runs` would otherwise cascade into its figures."""
         with self._errors("cannot migrate", name_store=True):
-            with self._write_engine.begin() as conn:
-                before, after = schema.upgrade(conn)
+            with self._write_engine.connect() as conn:
+                raw = conn.connection.driver_connection if self.is_sqlite else None
+                if raw is not None:
+                    raw.execute("PRAGMA foreign_keys = OFF")
+                try:
+                    with conn.begin():
+                        before, after = schema.upgrade(conn)
+                finally:
+                    if raw is not None:
+                        raw.execute("PRAGMA foreign_keys = ON")
             self._use_wal()
         self.revision = after
         return before, after
@@ -203,6 +234,8 @@ class Store:
         `name_store`: also put the store's name before our own StoreErrors (schema checks)."""
         try:
             yield
+        except RunRefused:
+            raise
         except StoreError as err:
             message = self._scrub(str(err))
             if name_store:
@@ -215,17 +248,63 @@ class Store:
 
     def write(self, work: Callable[[Session], T], action: str = "could not write") -> T:
         """Run `work` in one write transaction, retried a bounded number of times when it lost a
-        race with another writer (SQLite lock, PostgreSQL deadlock or unique-key race)."""
+        race with another writer (SQLite lock, PostgreSQL deadlock or unique-key race).
+
+        A value the store cannot hold (too long, out of range, a NUL in PostgreSQL text, a broken
+        reference) raises RunRefused: the same write would fail again, unlike a store that is away."""
         with self._errors(action):
             for attempt in range(1, WRITE_ATTEMPTS + 1):
                 try:
                     with Session(self._write_engine) as session, session.begin():
                         return work(session)
                 except (OperationalError, IntegrityError) as err:
-                    if attempt == WRITE_ATTEMPTS or not _retryable(err):
+                    if attempt < WRITE_ATTEMPTS and _retryable(err):
+                        time.sleep(random.uniform(0.5, 1.0) * min(2.0, 0.05 * 2 ** attempt))
+                        continue
+                    if isinstance(err, IntegrityError) and not _retryable(err):
+                        raise self._refused(action, err) from None
+                    raise
+                except DataError as err:
+                    raise self._refused(action, err) from None
+                except StatementError as err:  # a value the driver could not even send (not JSON, ...)
+                    if isinstance(err, DBAPIError):
                         raise
-                    time.sleep(random.uniform(0.5, 1.0) * min(2.0, 0.05 * 2 ** attempt))
+                    raise self._refused(action, err) from None
+                except (OverflowError, ValueError, TypeError) as err:
+                    # raised by the driver itself: sqlite3 and an int beyond 64 bits, psycopg and a
+                    # value json cannot encode
+                    raise self._refused(action, err) from None
         raise AssertionError("unreachable")
+
+    def read(self, work: Callable[[Session], T], action: str = "cannot read") -> T:
+        """Run `work` in a session that only reads; driver errors become one-line StoreErrors."""
+        with self._errors(action), Session(self.engine) as session:
+            return work(session)
+
+    def _refused(self, action: str, err: Exception) -> RunRefused:
+        reason = self._scrub(_short(err))
+        return RunRefused(f"store {self.shown_url}: {action}: {reason}", reason)
+
+    def check_writable(self) -> None:
+        """Prove the store takes a write now, before a survey measures for it: a host and a run row
+        (ids -1: no sequence value used up) inserted in a transaction that is then rolled back. On SQLite
+        that transaction is BEGIN IMMEDIATE, so the file's write lock is taken too. StoreError says why not
+        (read-only file or server, no INSERT right, locked past the busy timeout ...)."""
+        from sqlalchemy import insert
+
+        if self._readonly:
+            raise StoreError(f"store {self.shown_url}: opened read-only")
+        probe, now = f"eaves-write-check-{new_uuid()}", dt.datetime.now(dt.timezone.utc)
+        with self._errors("cannot take a write"), self._write_engine.connect() as conn:
+            trans = conn.begin()
+            try:
+                conn.execute(insert(Host).values(id=-1, host_key=probe, hostname=probe, fingerprint="",
+                                                 facts={}, first_seen=now))
+                conn.execute(insert(Run).values(id=-1, uuid=new_uuid(), host_id=-1, kind="survey",
+                                                started_at=now, status="interrupted", eaves_version="",
+                                                params={}, facts={}))
+            finally:
+                trans.rollback()
 
     # -- writing ---------------------------------------------------------------------------
     def save_run(self, record: RunRecord) -> str:
@@ -238,7 +317,8 @@ class Store:
         """Like save_run; also says whether the run was written (False: its UUID was there)."""
         if not record.uuid:
             record.uuid = new_uuid()
-        return record.uuid, self.write(lambda session: _insert_record(session, record), "could not save run")
+        rows = record_rows(record)
+        return record.uuid, self.write(lambda session: write_rows(session, rows), "could not save run")
 
     def has_run(self, uuid: str) -> bool:
         with self._errors("cannot read"), Session(self.engine) as session:
@@ -313,8 +393,8 @@ class Store:
                 selectinload(Run.host), selectinload(Run.measurements), selectinload(Run.placements)))
             if run is None:
                 raise StoreError(f"run {run_id}: no such run in {self.shown_url}", exit_code=2)
-            figures = tuple(_figure(m) for m in run.measurements)
-            placements = tuple(_placed(p) for p in run.placements)
+            figures = tuple(figure_of(m) for m in run.measurements)
+            placements = tuple(placed_of(p) for p in run.placements)
             return StoredRun(_summary(run, len(figures), len(placements)), dict(run.params),
                              dict(run.facts), dict(run.host.facts), run.ceilings_run_uuid,
                              figures, placements)
@@ -399,26 +479,6 @@ class Store:
         return out
 
 
-def _insert_record(session: Session, record: RunRecord) -> bool:
-    if session.scalar(select(Run.id).where(Run.uuid == record.uuid)) is not None:
-        return False
-    host = session.scalar(select(Host).where(Host.host_key == record.host_key))
-    if host is None:
-        host = Host(host_key=record.host_key, hostname=record.hostname,
-                    fingerprint=record.fingerprint, facts=record.host_facts)
-        session.add(host)
-        session.flush()
-    run = Run(uuid=record.uuid, host_id=host.id, kind=record.kind, started_at=record.started_at,
-              ended_at=record.ended_at, status=record.status,
-              eaves_version=record.eaves_version, params=record.params,
-              facts=record.host_facts, tag=record.tag, note=record.note,
-              git_describe=record.git_describe, ceilings_run_uuid=record.ceilings_run_uuid)
-    run.measurements = [_measurement_row(f) for f in record.figures]
-    run.placements = [_placement_row(p) for p in record.placements]
-    session.add(run)
-    return True
-
-
 def _retryable(err: Exception) -> bool:
     """A write that lost a race and may succeed when repeated."""
     orig = getattr(err, "orig", None)
@@ -440,42 +500,6 @@ def _short(err: Exception) -> str:
     """First line of a driver error, without SQL or parameters, and with no password in it."""
     orig = getattr(err, "orig", None) or err
     return str(orig).strip().splitlines()[0] if str(orig).strip() else type(orig).__name__
-
-
-def _measurement_row(f: Figure) -> Measurement:
-    values = {unit: None for unit in FIGURE_UNITS}
-    values[f.unit] = f.median
-    q1, q3 = quartiles(f.samples)
-    return Measurement(suite=f.suite, kernel=f.kernel, variant=f.variant, dtype=f.dtype,
-                       threads=f.threads, working_set_bytes=f.working_set_bytes,
-                       cache_level=f.cache_level, stride_elems=f.stride_elems, shape=f.shape,
-                       best=f.best, q1=q1, q3=q3, cv=coefficient_of_variation(f.samples), samples=list(f.samples),
-                       repetitions=f.repetitions, min_seconds=f.min_seconds, extra=f.extra, **values)
-
-
-def _figure(m: Measurement) -> Figure:
-    unit = next(u for u in FIGURE_UNITS if getattr(m, u) is not None)
-    return Figure(suite=m.suite, kernel=m.kernel, dtype=m.dtype, threads=m.threads, unit=unit,
-                  samples=tuple(m.samples), repetitions=m.repetitions, min_seconds=m.min_seconds,
-                  working_set_bytes=m.working_set_bytes, cache_level=m.cache_level,
-                  stride_elems=m.stride_elems, shape=m.shape, variant=m.variant,
-                  extra=dict(m.extra or {}))
-
-
-def _placement_row(p: PlacedLayer) -> Placement:
-    return Placement(layer=p.layer, kind=p.kind, dtype=p.dtype, threads=p.threads, batch=p.batch,
-                     seconds=p.seconds, samples=list(p.samples), flops=p.flops, bytes=p.bytes,
-                     flops_per_byte=p.flops_per_byte, flops_per_s=p.flops_per_s,
-                     bytes_per_s=p.bytes_per_s, attainable_flops_per_s=p.attainable_flops_per_s,
-                     efficiency=p.efficiency, bound=p.bound, roof=p.roof, extra=p.extra)
-
-
-def _placed(p: Placement) -> PlacedLayer:
-    return PlacedLayer(layer=p.layer, kind=p.kind, dtype=p.dtype, threads=p.threads, batch=p.batch,
-                       seconds=p.seconds, samples=tuple(p.samples), flops=p.flops, bytes=p.bytes,
-                       flops_per_byte=p.flops_per_byte, flops_per_s=p.flops_per_s,
-                       bytes_per_s=p.bytes_per_s, attainable_flops_per_s=p.attainable_flops_per_s,
-                       efficiency=p.efficiency, bound=p.bound, roof=p.roof, extra=dict(p.extra or {}))
 
 
 def _summary(run: Run, n_figures: int, n_placements: int) -> RunSummary:

@@ -1,4 +1,5 @@
-"""Tables for the terminal (rich renderables); built from ceiling rows, printed only by commands."""
+"""Tables for the terminal (rich renderables); built from ceiling rows, printed only by commands.
+Every string a store supplied goes in through eaves.plain.plain (shown as written, never as markup)."""
 
 from __future__ import annotations
 
@@ -7,6 +8,7 @@ from typing import Optional, Sequence
 from rich.table import Table
 
 from eaves.ceilings import KERNELS, LatencyCeiling, MemoryCeiling, StrideRow, level_key
+from eaves.plain import plain
 from eaves.records import RunSummary
 from eaves.units import format_bytes, format_rate
 
@@ -39,7 +41,7 @@ def memory_table(ceilings: Sequence[MemoryCeiling], latency: Sequence[LatencyCei
             size = _size_cell(level, plateaus.get(str(t)) or plateaus.get(t) or [])
             latency = f"{lat[level]:.1f} ns" if (i == 0 and level in lat) else ""
             shown = level + (" (possibly cache-assisted)" if any(c.caution for c in ceilings if c.level == level) else "")
-            table.add_row(shown if i == 0 else "", size, str(t), *cells, latency,
+            table.add_row(plain(shown) if i == 0 else "", size, str(t), *cells, latency,
                           end_section=i == len(threads) - 1)
     return table
 
@@ -70,16 +72,17 @@ def compute_table(rows: Sequence, title: str) -> Table:
         if c.peak_variant:
             paths.setdefault(c.dtype, c.peak_variant)
     caption = ["OP/s for integer rows (MAC/s beside, 1 MAC = 2 OP), FLOP/s otherwise; † not native here"]
-    caption += [f"{d}: {p}" for d, p in paths.items()]
+    caption += [f"{plain(d)}: {plain(p)}" for d, p in paths.items()]
     table = Table(title=title, title_justify="left", header_style="bold", box=None, pad_edge=False,
                   caption="\n".join(caption), caption_justify="left")
     for name in ("dtype", "thr", "peak", "MAC/s", "GEMM", "GEMM shape", "theoretical", "of theor."):
         table.add_column(name, justify="left" if name in ("dtype", "GEMM shape") else "right", no_wrap=True)
     for c in rows:
         unit = "OP/s" if c.dtype.startswith("int") else "FLOP/s"
-        table.add_row(c.dtype + ("" if c.native else " †"), str(c.threads), format_rate(c.peak_ops_per_s, unit),
+        table.add_row(plain(c.dtype) + ("" if c.native else " †"), str(c.threads),
+                      format_rate(c.peak_ops_per_s, unit),
                       format_rate(c.peak_macs_per_s, "MAC/s") if c.dtype.startswith("int") else "",
-                      format_rate(c.gemm_ops_per_s, unit), c.gemm_shape or "-",
+                      format_rate(c.gemm_ops_per_s, unit), plain(c.gemm_shape or "-"),
                       format_rate(c.theoretical_ops_per_s, unit),
                       "-" if c.pct_of_theoretical is None else f"{c.pct_of_theoretical:.0f}%")
     return table
@@ -91,20 +94,19 @@ def runs_table(runs: Sequence[RunSummary], title: Optional[str] = None) -> Table
         table.add_column(name)
     for r in runs:
         secs = f"{(r.ended_at - r.started_at).total_seconds():.0f}" if r.ended_at else "-"
-        table.add_row(str(r.id), r.uuid[:8], r.host_key, r.kind, r.status, r.started_at.strftime("%Y-%m-%d %H:%M:%S"),
-                      secs, r.tag or "", str(r.n_figures), str(r.n_placements), r.git_describe or "")
+        table.add_row(str(r.id), plain(r.uuid[:8]), plain(r.host_key), plain(r.kind), plain(r.status),
+                      r.started_at.strftime("%Y-%m-%d %H:%M:%S"), secs, plain(r.tag or ""), str(r.n_figures),
+                      str(r.n_placements), plain(r.git_describe or ""))
     return table
 
 
 def failures_table(failures: Sequence[dict], title: str = "Steps that gave no figure") -> Table:
     """One row per failed step: what ran (the progress label) and why it gave nothing."""
-    from rich.markup import escape
-
     table = Table(title=title, title_justify="left", header_style="bold red", box=None, pad_edge=False)
     table.add_column("step")
     table.add_column("reason")
     for f in failures:
-        table.add_row(escape(str(f.get("label", "?"))), escape(str(f.get("reason", "?"))))
+        table.add_row(plain(f.get("label", "?")), plain(f.get("reason", "?")))
     return table
 
 
@@ -119,5 +121,5 @@ def steadiness_table(rows: Sequence, title: str) -> Table:
     for name in ("ceiling", "runs", "spread", "counts beyond"):
         table.add_column(name, justify="left" if name == "ceiling" else "right", no_wrap=True)
     for key, n in rows:
-        table.add_row(key.name(), str(n.runs), f"{n.spread:.1%}", f"{n.floor:.0%}")
+        table.add_row(plain(key.name()), str(n.runs), f"{n.spread:.1%}", f"{n.floor:.0%}")
     return table

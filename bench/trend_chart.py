@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Sequence
 
 from eaves.charts import INK, PAPER, _pyplot, _style
+from eaves.plain import visible
 from eaves.compare import SLOWER
 from eaves.errors import InputError
 from eaves.trend import MetricTrend, Trend
@@ -45,7 +46,7 @@ def _figure(m: MetricTrend, host: str):
     fig, ax = plt.subplots(figsize=(7.5, 3.0), facecolor=PAPER)
     _draw(ax, m)
     fig.autofmt_xdate()
-    fig.suptitle(f"{host}: {m.key.name()}", x=0.01, ha="left", fontsize=9, color=INK)
+    fig.suptitle(f"{visible(host)}: {visible(m.key.name())}", x=0.01, ha="left", fontsize=9, color=INK)
     fig.tight_layout()
     return plt, fig
 
@@ -59,14 +60,14 @@ def trend_grid_svg(metrics: Sequence[MetricTrend], host: str, columns: int = 3) 
 
     for ax, m in zip(axes.flat, metrics):
         _draw(ax, m, legend=False)
-        ax.set_title(m.key.name(), fontsize=8, color=INK, loc="left")
+        ax.set_title(visible(m.key.name()), fontsize=8, color=INK, loc="left")
         ax.tick_params(labelsize=7)
         locator = mdates.AutoDateLocator(maxticks=4)
         ax.xaxis.set_major_locator(locator)
         ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
     for ax in list(axes.flat)[len(metrics):]:
         ax.set_visible(False)
-    fig.suptitle(f"{host}: ceilings over time (dashed: baseline; circled: drift)", x=0.01, ha="left",
+    fig.suptitle(f"{visible(host)}: ceilings over time (dashed: baseline; circled: drift)", x=0.01, ha="left",
                  fontsize=9, color=INK)
     fig.subplots_adjust(left=0.06, right=0.98, top=1 - 0.45 / rows, bottom=0.25 / rows, wspace=0.28, hspace=0.55)
     buf = io.StringIO()

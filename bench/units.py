@@ -10,7 +10,7 @@ from eaves.errors import InputError
 _BINARY = {"": 1, "b": 1, "k": 1024, "kib": 1024, "m": 1024**2, "mib": 1024**2,
            "g": 1024**3, "gib": 1024**3, "t": 1024**4, "tib": 1024**4}
 _DECIMAL = {"kb": 1000, "mb": 1000**2, "gb": 1000**3, "tb": 1000**4}
-_SIZE = re.compile(r"^\s*([0-9]*\.?[0-9]+)\s*([a-zA-Z]*)\s*$")
+_SIZE = re.compile(r"^\s*([-+]?[0-9]*\.?[0-9]+)\s*([a-zA-Z]*)\s*$")
 
 
 def parse_size(text: str, what: str = "size") -> int:
@@ -22,6 +22,10 @@ def parse_size(text: str, what: str = "size") -> int:
     factor = _BINARY.get(unit) or _DECIMAL.get(unit)
     if factor is None:
         raise InputError(f"{what}: unknown unit {m.group(2)!r} in {text!r} (use B, KiB, MiB, GiB, TiB, KB, MB, GB)")
+    if number < 0:
+        raise InputError(f"{what}: {text!r} is negative: a size must be above zero")
+    if not math.isfinite(number * factor) or number * factor >= 2**63:
+        raise InputError(f"{what}: {text!r} is too large to be a size")
     value = int(round(number * factor))
     if value <= 0:
         raise InputError(f"{what}: {text!r} must be above zero")
@@ -37,6 +41,14 @@ def parse_int_list(text: str, what: str) -> list[int]:
     if not values:
         raise InputError(f"{what}: empty list")
     return values
+
+
+def parse_name_list(text: str, what: str) -> list[str]:
+    """'fp64, fp32' -> ['fp64', 'fp32']; a list with no name in it (',' or '') is an InputError naming `what`."""
+    names = [part.strip() for part in str(text).split(",") if part.strip()]
+    if not names:
+        raise InputError(f"{what}: {text!r} is an empty list (give at least one name)")
+    return names
 
 
 def format_bytes(n: float | None) -> str:

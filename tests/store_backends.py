@@ -25,7 +25,7 @@ def pg_base_url() -> str:
     url = os.environ.get(PG_ENV)
     if not url:
         message = (f"{PG_ENV} is not set: no PostgreSQL server to test against "
-                   f"(.ci/run starts one; see the README: A store for a fleet)")
+                   f"(.ci/run starts one; see docs/fleet.md)")
         if os.environ.get("CI"):
             pytest.fail(f"{message}; CI must not skip the PostgreSQL tests")
         pytest.skip(message)

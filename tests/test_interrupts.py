@@ -128,3 +128,94 @@ def test_deferred_holds_the_signal_until_the_save_is_done():
             time.sleep(0.05)
             saved.append("run")
     assert saved == ["run"]
+
+
+# -- the eaves command itself: SIGINT and SIGTERM alike, from start-up on (issue 18) -------------------
+
+TINY = ["--quick", "--only", "memory", "--threads", "1", "--sweep-top", "512KiB", "--samples", "3",
+        "--sample-seconds", "0.002"]
+
+
+def _catches(pid: int, signum: int) -> bool:
+    """Whether process `pid` has a handler for `signum`: bit signum-1 of the SigCgt mask in
+    /proc/PID/status (proc(5))."""
+    try:
+        status = Path(f"/proc/{pid}/status").read_text()
+    except FileNotFoundError:
+        return False
+    mask = next(line.split()[1] for line in status.splitlines() if line.startswith("SigCgt:"))
+    return bool(int(mask, 16) >> (signum - 1) & 1)
+
+
+def _eaves(tmp_path: Path, *args: str) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "eaves", *args], cwd=tmp_path, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+
+
+def _until_handlers_installed(proc: subprocess.Popen) -> None:
+    deadline = time.monotonic() + 30
+    while not _catches(proc.pid, signal.SIGTERM):
+        assert proc.poll() is None and time.monotonic() < deadline, proc.stderr.read()
+        time.sleep(0.001)
+
+
+def _runs(url: str):
+    store = Store(url, create=False)
+    try:
+        return [store.load_run(r.id) for r in store.runs()]
+    finally:
+        store.close()
+
+
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
+def test_a_stop_signal_during_start_up_exits_130_with_the_one_message(tmp_path, signum):
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    proc = _eaves(tmp_path, "survey", *TINY, "--db", url)
+    _until_handlers_installed(proc)  # the first thing main does; the command's modules still load
+    proc.send_signal(signum)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err and err.strip().splitlines()[-1] == "eaves: interrupted"
+    assert not (tmp_path / "store.db").exists() or _runs(url) == []
+
+
+@pytest.mark.parametrize("delay", [0.4, 1.5, 3.0])
+def test_sigterm_at_any_moment_of_a_survey_exits_130_and_never_stores_an_empty_run(tmp_path, delay):
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    proc = _eaves(tmp_path, "survey", *TINY, "--db", url)
+    _until_handlers_installed(proc)
+    time.sleep(delay)
+    if proc.poll() is not None:
+        pytest.skip(f"the survey ended within {delay} s: no moment left to interrupt")
+    proc.send_signal(signal.SIGTERM)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert "interrupted by SIGTERM" in out or err.strip().splitlines()[-1] == "eaves: interrupted"
+    runs = _runs(url) if (tmp_path / "store.db").exists() else []
+    # a signal after the run was saved (while charts are drawn) leaves that complete run: still exit 130
+    assert all(r.summary.status in ("interrupted", "complete") and r.figures for r in runs) and len(runs) <= 1
+
+
+def test_a_stop_signal_after_the_command_returned_still_exits_130():
+    script = textwrap.dedent("""
+        import time
+        from eaves import interrupts
+        interrupts.exit_on_stop(130, "eaves: interrupted")
+        print("ready", flush=True)
+        time.sleep(60)
+    """)
+    proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    assert proc.stdout.readline().strip() == "ready"
+    proc.send_signal(signal.SIGTERM)
+    out, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130 and err.strip() == "eaves: interrupted"
+
+
+def test_main_in_process_leaves_the_callers_handlers_as_they_were(tmp_path, capsys):
+    from eaves.cli import main
+
+    before = {s: signal.getsignal(s) for s in interrupts.STOP_SIGNALS}
+    assert main(["show", "latest", "--db", f"sqlite:///{tmp_path / 'store.db'}"]) == 2
+    assert {s: signal.getsignal(s) for s in interrupts.STOP_SIGNALS} == before

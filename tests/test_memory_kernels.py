@@ -109,8 +109,11 @@ def test_detected_l1_and_l2_are_within_a_factor_of_two_of_sysfs(buffers):
         pytest.skip("sysfs reports no L1/L2 sizes on this machine")
     a, _ = buffers
     sizes = [int(4096 * 2 ** (k / 2)) // 128 * 128 for k in range(int(2 * np.log2(8 * l2.size_bytes / 4096)) + 1)]
-    # the best of 9 short samples per size: another process on a shared host only ever lowers a sample
-    rates = [_read_rate(a, s, policy=TimingPolicy(min_seconds=0.002, samples=9)) for s in sizes]
+    # the best of 9 short samples per size, over two passes of the sweep: another process on a shared host
+    # only ever lowers a sample, and a pause of the VM can spoil several neighbouring sizes of one pass
+    policy = TimingPolicy(min_seconds=0.002, samples=9)
+    passes = [[_read_rate(a, s, policy=policy) for s in sizes] for _ in range(2)]
+    rates = [max(pair) for pair in zip(*passes)]
     reported = [CacheCapacity("L1", l1.size_bytes), CacheCapacity("L2", l2.size_bytes)]
     plateaus = {p.name: p for p in detect_plateaus(sizes, rates, reported, dram_after=None)}
     for name, cache in (("L1", l1), ("L2", l2)):

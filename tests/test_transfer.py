@@ -54,15 +54,15 @@ def test_a_push_cut_short_after_the_commit_and_repeated_doubles_nothing(store_ur
     spool = tmp_path / "spool.db"
     uuids = [Store(f"sqlite:///{spool}").save_run(record(minutes=m)) for m in range(3)]
     # The first push stored every run and died before removing any from the spool.
-    assert copy_runs(Store(f"sqlite:///{spool}"), Store(store_url), remove=False).copied == 3
+    assert len(copy_runs(Store(f"sqlite:///{spool}"), Store(store_url), remove=False).copied) == 3
     result = push(store_url, spool)
-    assert (result.copied, result.already_there, result.removed_from_source) == (0, 3, 3)
+    assert (result.copied, sorted(result.already_there), result.removed_from_source) == ((), sorted(uuids), 3)
     assert sorted(r.uuid for r in Store(store_url).runs()) == sorted(uuids)
     assert Store(f"sqlite:///{spool}").runs() == []
 
 
 def test_nothing_to_push_without_a_spool(store_url, tmp_path):
-    assert push(store_url, tmp_path / "absent.db").copied == 0
+    assert push(store_url, tmp_path / "absent.db").copied == ()
     assert not (tmp_path / "absent.db").exists()
 
 
@@ -96,6 +96,10 @@ def test_merge_imports_hosts_and_runs_once_and_leaves_the_file_alone(store_url, 
     assert imported.status == "interrupted" and imported.n_figures == len(figures())
 
 
-def test_merge_of_a_missing_file_is_a_store_error(tmp_path, run_cli):
-    code, _, err = run_cli("merge", str(tmp_path / "absent.db"), "--db", f"sqlite:///{tmp_path / 's.db'}")
-    assert code == 3 and "no such file" in err and len(err.strip().splitlines()) == 1
+def test_merge_of_a_missing_file_is_bad_input_naming_the_file(tmp_path, run_cli):
+    missing = tmp_path / "absent.db"
+    code, _, err = run_cli("merge", str(missing), "--db", f"sqlite:///{tmp_path / 's.db'}")
+    assert code == 2 and f"{missing}: no such file" in err and len(err.strip().splitlines()) == 1
+    assert not missing.exists() and not (tmp_path / "s.db").exists()  # nothing created either
+    code, _, err = run_cli("merge", str(tmp_path), "--db", f"sqlite:///{tmp_path / 's.db'}")
+    assert code == 2 and f"{tmp_path}: not a file" in err

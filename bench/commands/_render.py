@@ -7,6 +7,7 @@ from typing import Mapping, Optional, Sequence
 from rich.console import Console
 
 from eaves.ceilings import latency_ceilings, memory_ceilings, stride_penalty, stride_rows
+from eaves.plain import plain
 from eaves.records import Figure
 from eaves.tables import compute_table, memory_table, stride_table
 
@@ -15,6 +16,7 @@ def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, ti
                    failures: Sequence[dict] = (), steadiness: Optional[Mapping] = None) -> None:
     """Memory table, stride table and penalty, compute table, failed steps: whichever the run has;
     with `steadiness` (eaves.noise.steadiness) the run-to-run spread of each headline ceiling that has one."""
+    title = plain(title)
     if any(f.suite == "memory" for f in figures):
         console.print(memory_table(memory_ceilings(figures), latency_ceilings(figures), levels,
                                    f"Memory ceilings, {title}"))
@@ -50,10 +52,11 @@ def print_ceilings(console: Console, figures: Sequence[Figure], levels: dict, ti
 
 def make_console(stderr: bool = False) -> Console:
     """A console that wraps tables to the terminal, but 120 columns when output goes to a file or pipe,
-    and never breaks a plain line (so logs and tests see whole sentences)."""
+    and never breaks a plain line (so logs and tests see whole sentences); no :emoji: codes replaced
+    (stored strings pass through eaves.plain.plain, which escapes markup but cannot escape those)."""
     import os
     import sys
 
     stream = sys.stderr if stderr else sys.stdout
     width = None if stream.isatty() else int(os.environ.get("COLUMNS", 120))
-    return Console(stderr=stderr, highlight=False, width=width, soft_wrap=True)
+    return Console(stderr=stderr, highlight=False, width=width, soft_wrap=True, emoji=False)

@@ -8,13 +8,14 @@ import sys
 
 from eaves.compare import DEFAULT_THRESHOLD
 from eaves.errors import EXIT_WORSE, InputError
+from eaves.commands._refs import run_ref
 
 HELP = "compare two runs (or hosts' newest runs): every ceiling and placed layer, judged against noise"
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("a", metavar="A", help="before: run id, UUID or prefix, or a host key or hostname (its newest run)")
-    p.add_argument("b", metavar="B", help="after: same forms as A")
+    p.add_argument("a", metavar="A", type=run_ref, help="before: run id, UUID or prefix, or a host key or hostname (its newest run)")
+    p.add_argument("b", metavar="B", type=run_ref, help="after: same forms as A")
     p.add_argument("--json", action="store_true", help="print the comparison as JSON")
     p.add_argument("--allow-different-hosts", action="store_true",
                    help="compare runs of different hardware (refused by default)")
@@ -70,19 +71,19 @@ def _document(d) -> dict:
 
 def _print(d) -> None:
     from rich.console import Console
-    from rich.markup import escape
+    from eaves.plain import plain
     from rich.table import Table
 
     from eaves.commands._verdicts import change_cell, floor_cell, format_value, noise_summary, p_cell, verdict_cell
 
-    console = Console(highlight=False)
+    console = Console(highlight=False, emoji=False)
     if not console.is_terminal:
-        console = Console(width=max(console.width, 160), highlight=False)
+        console = Console(width=max(console.width, 160), highlight=False, emoji=False)
     b, a = d.before, d.after
-    console.print(f"before: run {b.id} {b.uuid[:8]} {escape(b.host_key)} {b.started_at:%Y-%m-%d %H:%M}"
-                  f"{' tag ' + escape(b.tag) if b.tag else ''}")
-    console.print(f"after:  run {a.id} {a.uuid[:8]} {escape(a.host_key)} {a.started_at:%Y-%m-%d %H:%M}"
-                  f"{' tag ' + escape(a.tag) if a.tag else ''}")
+    console.print(f"before: run {b.id} {plain(b.uuid[:8])} {plain(b.host_key)} {b.started_at:%Y-%m-%d %H:%M}"
+                  f"{' tag ' + plain(b.tag) if b.tag else ''}")
+    console.print(f"after:  run {a.id} {plain(a.uuid[:8])} {plain(a.host_key)} {a.started_at:%Y-%m-%d %H:%M}"
+                  f"{' tag ' + plain(a.tag) if a.tag else ''}")
     if not d.same_hardware:
         console.print("[yellow]different hardware: differences are expected[/]")
     if d.metrics:
@@ -93,9 +94,9 @@ def _print(d) -> None:
         for m in d.metrics:
             c = m.comparison
             if c is None:
-                t.add_row(escape(m.key.name()), "-", "-", "-", "-", "-", m.present)
+                t.add_row(plain(m.key.name()), "-", "-", "-", "-", "-", m.present)
                 continue
-            t.add_row(escape(m.key.name()), format_value(c.before, m.unit), format_value(c.after, m.unit),
+            t.add_row(plain(m.key.name()), format_value(c.before, m.unit), format_value(c.after, m.unit),
                       change_cell(c), p_cell(c), floor_cell(c), verdict_cell(c))
         console.print(t)
         line = noise_summary(m.comparison for m in d.metrics)
@@ -108,7 +109,7 @@ def _print(d) -> None:
 
 
 def _print_layers(console, layers, title: str = "placed layers: efficiency against the roof") -> None:
-    from rich.markup import escape
+    from eaves.plain import plain
     from rich.table import Table
 
     from eaves.commands._verdicts import change_cell, floor_cell, format_value, noise_summary, p_cell, verdict_cell
@@ -117,7 +118,7 @@ def _print_layers(console, layers, title: str = "placed layers: efficiency again
     for col in ("layer", "before", "after", "eff before", "eff after", "change", "p", "floor", "verdict"):
         t.add_column(col, justify="left" if col in ("layer", "verdict") else "right")
     for c in layers.changes:
-        name = escape(c.layer) + (" [yellow](counts changed)[/]" if c.counts_changed else "")
+        name = plain(c.layer) + (" [yellow](counts changed)[/]" if c.counts_changed else "")
         t.add_row(name, format_value(c.before_seconds, "seconds"), format_value(c.after_seconds, "seconds"),
                   format_value(c.before_efficiency, "efficiency"), format_value(c.after_efficiency, "efficiency"),
                   change_cell(c.comparison), p_cell(c.comparison), floor_cell(c.comparison), verdict_cell(c.comparison))
@@ -126,6 +127,6 @@ def _print_layers(console, layers, title: str = "placed layers: efficiency again
     if line:
         console.print(line)
     for name in layers.new:
-        console.print(f"new layer: {escape(name)}")
+        console.print(f"new layer: {plain(name)}")
     for name in layers.vanished:
-        console.print(f"vanished layer: {escape(name)}")
+        console.print(f"vanished layer: {plain(name)}")

@@ -59,21 +59,21 @@ def run(args: argparse.Namespace) -> int:
 
 def _print(before, after, result) -> None:
     from rich.console import Console
-    from rich.markup import escape
+    from eaves.plain import plain
 
     from eaves.commands.diff import _print_layers
 
-    console = Console(highlight=False)
+    console = Console(highlight=False, emoji=False)
     if not console.is_terminal:
-        console = Console(width=max(console.width, 160), highlight=False)
-    console.print(f"baseline: {escape(before.source)}   candidate: {escape(after.source)}")
+        console = Console(width=max(console.width, 160), highlight=False, emoji=False)
+    console.print(f"baseline: {plain(before.source)}   candidate: {plain(after.source)}")
     _print_layers(console, result, f"layers in both: efficiency against the roof "
                                    f"(fail beyond {result.threshold:.0%} loss, the run-to-run floor "
                                    "and the samples' noise)")
     if not result.changes:
         console.print("[yellow]no layer is in both sets: nothing to gate[/]")
     for c in result.worse:
-        console.print(f"[bold red]FAIL[/] {escape(c.layer)}: efficiency {c.before_efficiency:.1%} -> "
+        console.print(f"[bold red]FAIL[/] {plain(c.layer)}: efficiency {c.before_efficiency:.1%} -> "
                       f"{c.after_efficiency:.1%} ({c.comparison.change_pct:+.1f}%)")
     if not result.worse:
         console.print("[green]pass[/]: no layer moved away from its roof beyond the allowed loss")

@@ -10,25 +10,31 @@ import sys
 from pathlib import Path
 
 from eaves.errors import InputError
+from eaves.plain import plain, visible
 from eaves.units import format_bytes, format_rate
+from eaves.commands._refs import run_ref
 
 NAME = "place"
+TABLE_ROWS = 60  # a terminal table of 100 000 rows took 150 s to render and nobody reads it
 HELP = "place layer timings under this host's measured roofs (from a file or the built-in layers)"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("file", nargs="?", help="layer timings, CSV or JSON (see the README: Placing layers)")
+    parser.add_argument("file", nargs="?", help="layer timings, CSV or JSON (see docs/layer-files.md)")
     parser.add_argument("--builtin", action="store_true",
                         help="time the built-in reference layers on this host, place them and store them")
     parser.add_argument("--quick", action="store_true", help="with --builtin: small layers, short samples")
     parser.add_argument("--threads", type=int, default=1, help="with --builtin: threads to run them with (default 1)")
-    parser.add_argument("--run", metavar="R", help="survey run whose roofs to use (id, UUID or prefix; "
+    parser.add_argument("--run", metavar="R", type=run_ref, help="survey run whose roofs to use (id, UUID or prefix; "
                         "default: the newest complete survey of this host)")
     parser.add_argument("--as-dtype", metavar="D", help="also show where each layer would move at dtype D")
     parser.add_argument("--batching", action="store_true",
                         help="for dense and attention layers, show intensity and throughput per batch size")
     parser.add_argument("--json", metavar="PATH", help="write the placements as JSON to PATH ('-': stdout)")
     parser.add_argument("--chart", metavar="PATH", help="draw the roofline chart to PATH (.png and .svg)")
+    parser.add_argument("--rows", metavar="N", type=int, default=TABLE_ROWS,
+                        help=f"layers shown in the table, most headroom first (default {TABLE_ROWS}; 0: all; "
+                             "--json always has every layer)")
     parser.add_argument("--store", action="store_true",
                         help="with FILE: also store the placements as a run of the ceilings run's host "
                              "(--builtin always stores)")
@@ -41,6 +47,8 @@ def run(args: argparse.Namespace) -> int:
     from eaves.roofline import model_from_store
     from eaves.store import Store
 
+    if args.rows < 0:
+        raise InputError(f"--rows: {args.rows} is negative (0 shows every layer)")
     if bool(args.file) == bool(args.builtin):
         raise InputError("place: give either a layer FILE or --builtin")
     if args.builtin:
@@ -78,9 +86,9 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         _write_json(args.json, model, placed, projections, curves, stored)
     if not to_stdout:
-        _print(model, placed, projections, curves, skipped, stored)
+        _print(model, placed, projections, curves, skipped, stored, rows=args.rows)
         if args.chart:
-            print("chart: " + ", ".join(str(p) for p in written))
+            print("chart: " + ", ".join(visible(p) for p in written))
     return 0
 
 
@@ -157,52 +165,58 @@ def _seconds(s: float) -> str:
     return f"{s / 1e-9:.3g} ns"
 
 
-def _print(model, placed, projections, curves, skipped, stored) -> None:
+def _print(model, placed, projections, curves, skipped, stored, rows: int = 0) -> None:
     from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
 
-    console = Console()
+    console = Console(emoji=False)
     if not console.is_terminal:
-        console = Console(width=max(console.width, 200))  # files and pipes get the whole table
-    table = Table(title=f"layers under run {model.run_uuid[:8]} of {model.host_key} (most headroom first)",
+        console = Console(width=max(console.width, 200), emoji=False)  # files and pipes get the whole table
+    table = Table(title=f"layers under run {plain(model.run_uuid[:8])} of {plain(model.host_key)} "
+                  "(most headroom first)",
                   title_justify="left", header_style="bold")
     table.add_column("layer", no_wrap=True, min_width=min(48, max(len(p.layer) for p in placed)))
     for col in ("kind", "dtype", "thr", "time", "MACs", "FLOP/B", "achieved", "attainable",
                 "eff", "mem eff", "bound", "roof", "level", "headroom"):
         table.add_column(col, justify="left" if col in ("kind", "dtype", "bound", "roof", "level") else "right")
     order = sorted(placed, key=lambda p: (p.bound != "impossible", -p.extra["headroom"]))
-    for p in order:
+    for p in order[:rows or None]:
         e = p.extra
         thr = str(p.threads) + ("" if e["threads_match"] == "exact" else f"→{e['threads_measured']}")
         macs = "-" if e["macs"] is None else format_rate(e["macs"], "")
-        bound = "[bold red]impossible[/]" if p.bound == "impossible" else p.bound
-        table.add_row(p.layer, p.kind, p.dtype, thr, _seconds(p.seconds), macs, f"{p.flops_per_byte:.3g}",
+        bound = "[bold red]impossible[/]" if p.bound == "impossible" else plain(p.bound)
+        table.add_row(plain(p.layer), plain(p.kind), plain(p.dtype), thr, _seconds(p.seconds), macs,
+                      f"{p.flops_per_byte:.3g}",
                       format_rate(p.flops_per_s, "FLOP/s"), format_rate(p.attainable_flops_per_s, "FLOP/s"),
-                      f"{p.efficiency:.0%}", f"{e['memory_efficiency']:.0%}", bound, p.roof,
-                      e["consistent_level"] or "none", f"{e['headroom']:.2f}x")
+                      f"{p.efficiency:.0%}", f"{e['memory_efficiency']:.0%}", bound, plain(p.roof),
+                      plain(e["consistent_level"] or "none"), f"{e['headroom']:.2f}x")
     console.print(table)
+    if rows and len(order) > rows:
+        console.print(f"... and {len(order) - rows} more layer(s) with less headroom (--rows 0 shows all; "
+                      "--json has every layer)", highlight=False)
     for p in order:
         if p.bound == "impossible":
-            console.print(f"[red]{p.layer}[/]: {p.extra['reason']}", highlight=False)
+            console.print(Text.assemble((visible(p.layer), "red"), ": ", visible(p.extra["reason"])), highlight=False)
     if projections:
-        t = Table(title=f"what if: at {projections[0].as_dtype}", title_justify="left", header_style="bold")
+        t = Table(title=f"what if: at {plain(projections[0].as_dtype)}", title_justify="left", header_style="bold")
         for col in ("layer", "dtype", "bytes", "→ bytes", "FLOP/B", "→ FLOP/B", "attainable", "→ attainable",
                     "→ bound", "→ roof"):
             t.add_column(col, justify="left" if col in ("layer", "dtype", "→ bound", "→ roof") else "right")
         for q in projections:
-            t.add_row(q.layer, q.dtype, format_bytes(q.bytes), format_bytes(q.as_bytes), f"{q.flops_per_byte:.3g}",
+            t.add_row(plain(q.layer), plain(q.dtype), format_bytes(q.bytes), format_bytes(q.as_bytes), f"{q.flops_per_byte:.3g}",
                       f"{q.as_flops_per_byte:.3g}", format_rate(q.attainable_flops_per_s, "FLOP/s"),
-                      format_rate(q.as_attainable_flops_per_s, "FLOP/s"), q.as_bound, q.as_roof)
+                      format_rate(q.as_attainable_flops_per_s, "FLOP/s"), plain(q.as_bound), plain(q.as_roof))
         console.print(t)
     for name, points in curves.items():
-        t = Table(title=f"batching: {name} at its roof", title_justify="left", header_style="bold")
+        t = Table(title=f"batching: {plain(name)} at its roof", title_justify="left", header_style="bold")
         for col in ("batch", "FLOP/B", "attainable", "bound", "latency", "items/s"):
             t.add_column(col, justify="right")
         for b in points:
             t.add_row(str(b.batch), f"{b.flops_per_byte:.3g}", format_rate(b.attainable_flops_per_s, "FLOP/s"),
-                      b.bound, _seconds(b.latency_seconds), format_rate(b.items_per_s, ""))
+                      plain(b.bound), _seconds(b.latency_seconds), format_rate(b.items_per_s, ""))
         console.print(t)
     if skipped:
         console.print(f"not timed (no compute ceilings in the run): {', '.join(skipped)}")
     if stored:
-        console.print(f"stored as run {stored} (kind layers, ceilings from {model.run_uuid})")
+        console.print(f"stored as run {plain(stored)} (kind layers, ceilings from {plain(model.run_uuid)})")

@@ -87,29 +87,32 @@ def _print_rest(profile, stored, model, layers_file, charts) -> None:
     from rich.table import Table
 
     from eaves.commands.place import _seconds
+    from eaves.plain import plain
 
-    console = Console()
+    console = Console(emoji=False)
     if profile.not_counted:
         t = Table(title="not counted (timed, but eaves has no operation count for them)", title_justify="left",
                   header_style="bold")
         for col in ("layer", "module", "time", "why"):
             t.add_column(col, justify="right" if col == "time" else "left")
         for n in profile.not_counted:
-            t.add_row(n.name, n.module_type, _seconds(n.median_seconds), n.reason)
+            t.add_row(plain(n.name), plain(n.module_type), _seconds(n.median_seconds), plain(n.reason))
         console.print(t)
     passes = sorted(profile.pass_seconds)
-    console.print(f"{profile.model} at {profile.dtype}, {profile.threads} thread(s), input "
+    console.print(f"{plain(profile.model)} at {plain(profile.dtype)}, {profile.threads} thread(s), input "
                   f"{'x'.join(map(str, profile.input_shape))}: one pass {_seconds(passes[len(passes) // 2])}, "
                   f"{profile.layer_share:.0%} of it inside layers (the rest: code between layers, hooks)",
                   highlight=False)
     roof = model.compute_roof(profile.dtype, profile.threads)
     if roof is not None and roof.detail == "emulated":
-        console.print(f"note: run {model.run_uuid[:8]} measured {profile.dtype} without a native path "
-                      f"({roof.name} is emulated); PyTorch may use the host's native {profile.dtype} units and "
+        dtype = plain(profile.dtype)
+        console.print(f"note: run {plain(model.run_uuid[:8])} measured {dtype} without a native path "
+                      f"({plain(roof.name)} is emulated); PyTorch may use the host's native {dtype} units and "
                       "land above that roof", highlight=False)
     if layers_file:
-        console.print(f"layer file: {layers_file} (replay: eaves place {layers_file})", highlight=False)
+        console.print(f"layer file: {plain(layers_file)} (replay: eaves place {plain(layers_file)})", highlight=False)
     if charts:
-        console.print("chart: " + ", ".join(str(p) for p in charts), highlight=False)
+        console.print("chart: " + ", ".join(plain(p) for p in charts), highlight=False)
     if stored:
-        console.print(f"stored as run {stored} (kind layers, ceilings from {model.run_uuid})", highlight=False)
+        console.print(f"stored as run {plain(stored)} (kind layers, ceilings from {plain(model.run_uuid)})",
+                      highlight=False)

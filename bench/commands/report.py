@@ -33,5 +33,7 @@ def run(args: argparse.Namespace) -> int:
         path.write_text(report.html, encoding="utf-8")
     except OSError as err:
         raise InputError(f"--out {args.out}: cannot write {path.name}: {err.strerror}") from None
-    print(f"report: {path} ({report.charts} charts, ceilings from run {report.survey.uuid[:8]})")
+    from eaves.plain import visible
+
+    print(f"report: {visible(path)} ({report.charts} charts, ceilings from run {visible(report.survey.uuid[:8])})")
     return 0

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 
 from eaves.commands._render import make_console
+from eaves.plain import plain
 
 from eaves.store import Store
 from eaves.tables import runs_table
@@ -23,5 +24,5 @@ def run(args: argparse.Namespace) -> int:
     limit = parse_int_list(args.limit, "--limit")[0]
     store = Store(args.db)
     runs = store.runs(host=args.host, limit=limit)
-    make_console().print(runs_table(runs, f"Runs in {store.shown_url}"))
+    make_console().print(runs_table(runs, f"Runs in {plain(store.shown_url)}"))
     return 0

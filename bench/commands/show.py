@@ -8,13 +8,15 @@ import sys
 
 from eaves.commands._render import make_console, print_ceilings
 from eaves.document import run_document
+from eaves.plain import plain
 from eaves.store import Store
+from eaves.commands._refs import run_ref
 
 HELP = "show a stored run (id, UUID or UUID prefix, or 'latest')"
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("run", help="run id, UUID, UUID prefix, or latest")
+    p.add_argument("run", type=run_ref, help="run id, UUID, UUID prefix, or latest")
     p.add_argument("--json", action="store_true", help="print the run's JSON document")
     p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
 
@@ -41,13 +43,15 @@ def run(args: argparse.Namespace) -> int:
                 "started_at": s.started_at, "ended_at": s.ended_at, "tag": s.tag, "note": s.note,
                 "git_describe": s.git_describe, "eaves_version": s.eaves_version, "params": stored.params}
         doc = run_document(meta, stored.host_facts, stored.figures, stored.placements, steady)
-        sys.stdout.write(json.dumps(doc, indent=2) + "\n")
+        sys.stdout.write(json.dumps(doc, indent=2, allow_nan=False) + "\n")  # run_document made NaN null
         return 0
     console = make_console()
-    console.print(f"run {s.id} {s.uuid} on {s.host_key}: {s.kind}, {s.status}, started {s.started_at:%Y-%m-%d %H:%M:%S} UTC"
-                  + (f", tag {s.tag}" if s.tag else "") + (f", git {s.git_describe}" if s.git_describe else ""))
+    console.print(f"run {s.id} {plain(s.uuid)} on {plain(s.host_key)}: {plain(s.kind)}, {plain(s.status)}, "
+                  f"started {s.started_at:%Y-%m-%d %H:%M:%S} UTC"
+                  + (f", tag {plain(s.tag)}" if s.tag else "")
+                  + (f", git {plain(s.git_describe)}" if s.git_describe else ""))
     if s.note:
-        console.print(f"note: {s.note}", markup=False)
+        console.print(f"note: {plain(s.note)}")
     print_ceilings(console, stored.figures, stored.params.get("levels", {}), s.uuid[:8],
                    stored.params.get("failures") or (), steady)
     return 0

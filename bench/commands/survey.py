@@ -11,15 +11,17 @@ from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from eaves import interrupts
 from eaves.budget import make_budget
 from eaves.charts import bandwidth_chart, scaling_chart
-from eaves.document import check_writable, run_document, write_document
-from eaves.errors import EXIT_BROKEN, EXIT_INTERRUPTED, InputError
+from eaves.document import run_document, write_document
+from eaves.errors import EXIT_BROKEN, EXIT_INTERRUPTED, EXIT_STORE, InputError, StoreError
 from eaves.host import collect_host_facts
-from eaves.memory_survey import plan_memory
+from eaves.memory_survey import MIN_SWEEP_BYTES, plan_memory
+from eaves.outfile import check_output_path, write_text
+from eaves.plain import plain, unstorable
 from eaves.survey import SurveyOptions, reported_caches, run_survey
 from eaves.commands._render import make_console, print_ceilings
 from eaves.timing import TimingPolicy
 from eaves.threads import check_thread_counts, default_thread_counts
-from eaves.units import format_bytes, parse_int_list, parse_size
+from eaves.units import format_bytes, parse_int_list, parse_name_list, parse_size
 
 HELP = "measure this host's ceilings (memory bandwidth and latency per level, compute per dtype) and store them"
 PARTS = ("memory", "compute")
@@ -46,22 +48,34 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _options(args: argparse.Namespace, host) -> SurveyOptions:
+    for option, text in (("--tag", args.tag), ("--note", args.note)):
+        if text is not None and unstorable(text):
+            raise InputError(f"{option}: {unstorable(text)}")
     counts = check_thread_counts(parse_int_list(args.threads, "--threads")) if args.threads else \
         default_thread_counts(host.usable_cpus)
     budget = make_budget(args.max_memory, host.mem_available_bytes)
     parts = tuple(parse_parts(args.only))
     dtypes = None
-    if args.dtypes:
+    if args.dtypes is not None:
         from eaves.compute import check_dtypes
 
-        dtypes = tuple(check_dtypes([d.strip() for d in args.dtypes.split(",") if d.strip()]))
+        dtypes = tuple(check_dtypes(parse_name_list(args.dtypes, "--dtypes")))
     llc = host.last_level_cache()
-    top = parse_size(args.sweep_top, "--sweep-top") if args.sweep_top else None
+    top = _sweep_top(args.sweep_top) if args.sweep_top is not None else None
     policy = _policy(args)
     plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, policy=policy, top_bytes=top,
                        numa_nodes=host.numa_nodes, socket_cache_bytes=host.socket_cache_bytes())
     return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts,
                          _seconds(args.step_seconds, "--step-seconds", 0, 86400) if args.step_seconds else None)
+
+
+def _sweep_top(text: str) -> int:
+    """--sweep-top as bytes: above the sweep's first size, so the curve has at least two sizes."""
+    top = parse_size(text, "--sweep-top")
+    if top <= MIN_SWEEP_BYTES:
+        raise InputError(f"--sweep-top {text}: must be above {format_bytes(MIN_SWEEP_BYTES)}, the sweep's "
+                         "smallest working set (a bandwidth curve needs at least two sizes)")
+    return top
 
 
 def _seconds(text: str, option: str, low: float, high: float) -> float:
@@ -88,9 +102,9 @@ def _policy(args: argparse.Namespace) -> TimingPolicy:
 
 
 def parse_parts(text) -> list[str]:
-    if not text:
+    if text is None:
         return list(PARTS)
-    parts = [p.strip() for p in text.split(",") if p.strip()]
+    parts = parse_name_list(text, "--only")
     for p in parts:
         if p not in PARTS:
             raise InputError(f"--only: unknown part {p!r} (use memory, compute or memory,compute)")
@@ -128,33 +142,39 @@ def cautions(host, options: SurveyOptions) -> list[str]:
 def run(args: argparse.Namespace) -> int:
     host = collect_host_facts()
     options = _options(args, host)
-    check_writable(args.json, "--json")
+    check_output_path(args.json, "--json")
     charts_dir = _check_charts_dir(args.charts)
-    from eaves.store import Store, default_url
+    from eaves.destination import choose_destination
 
-    Store(args.db or default_url()).close()  # a bad store fails now, not after the measurements
+    destination = choose_destination(args.db)  # neither the store nor the spool takes a write: stop now
     to_stdout = args.json == "-"
     console = make_console(stderr=to_stdout)
     for line in cautions(host, options):
         console.print(f"[yellow]![/] {line}")
+    if destination.spooled:
+        console.print(f"[yellow]![/] {plain(destination.store_reason)}; this run will be spooled to "
+                      f"{plain(destination.spool)}")
     with Progress(SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn(),
                   console=console, transient=True) as bar:
         task = bar.add_task("starting")
         outcome = run_survey(host, options, lambda msg: bar.update(task, description=msg))
     record = outcome.record
-    from eaves.transfer import save_or_spool
-
-    with interrupts.deferred():  # a second Ctrl-C waits until the run is written
-        saved = save_or_spool(record, args.db)
-    console.print(("[yellow]" if saved.spooled else "[green]") + saved.message)
+    if outcome.interrupted_by and not record.figures:
+        console.print(f"[red]interrupted by {outcome.interrupted_by} before any figure was measured: "
+                      "nothing stored")
+        return EXIT_INTERRUPTED
+    saved, unstored = _save(record, destination)
+    if saved is not None:
+        console.print(("[yellow]" if saved.spooled else "[green]") + plain(saved.message))
     figures = record.figures
     levels = record.params.get("levels", {})
     title = f"{host.host_key()}  run {record.uuid[:8]}  ({record.status})"
     failures = record.params.get("failures") or []
-    steady = _steadiness(args.db, record) if not saved.spooled else None
+    steady = _steadiness(args.db, record) if saved is not None and not saved.spooled else None
     print_ceilings(console, figures, levels, title, failures, steadiness=steady)
     if outcome.interrupted_by:  # leave at once: no charts
-        console.print(f"[red]interrupted by {outcome.interrupted_by}: stored as an interrupted run")
+        console.print(f"[red]interrupted by {outcome.interrupted_by}"
+                      + (": stored as an interrupted run" if saved is not None else ""))
     else:
         _charts(console, host, figures, levels, charts_dir / f"{host.hostname}-{record.uuid[:8]}")
     for note in outcome.notes:
@@ -163,11 +183,14 @@ def run(args: argparse.Namespace) -> int:
     buffers = 3 * options.memory_plan.buffer_bytes // 2 if "memory" in options.parts else 0
     console.print(f"measured in {seconds:.1f} s; memory buffers {format_bytes(buffers)} "
                   f"(cap {format_bytes(options.budget.cap_bytes)})")
-    if args.json:
-        doc = run_document(_run_meta(record, saved), record.host_facts, figures, steadiness=steady)
-        text = write_document(doc, args.json)
-        if text is not None:
-            sys.stdout.write(text + "\n")
+    doc = run_document(_run_meta(record, saved), record.host_facts, figures, steadiness=steady) \
+        if args.json or unstored else None
+    kept = _write_json(doc, args.json, saved)
+    if unstored is not None:
+        kept = kept or _keep_unstored(doc, charts_dir, record.uuid, unstored)
+        console.print(f"[red]run {record.uuid} could not be stored: {plain(unstored)}; "
+                      f"its JSON document is {plain(kept)}")
+        return EXIT_STORE
     if outcome.interrupted_by:
         return EXIT_INTERRUPTED
     if failures:
@@ -179,6 +202,53 @@ def run(args: argparse.Namespace) -> int:
 
         return check_after_survey(console, args.db, record.uuid, spooled=saved.spooled)
     return 0
+
+
+def _save(record, destination):
+    """(Saved, None), or (None, the reason) when neither the store nor the spool took the run."""
+    from eaves.models import new_uuid
+    from eaves.transfer import save_or_spool
+
+    record.uuid = record.uuid or new_uuid()  # named even when no store takes it
+    try:
+        with interrupts.deferred():  # a second Ctrl-C waits until the run is written
+            return save_or_spool(record, destination.url, destination.spool, local=True), None
+    except StoreError as err:
+        return None, str(err)
+
+
+def _write_json(doc, path, saved):
+    """Write --json; returns the file it went to (None: no file, or stdout). A path that fails is a
+    one-line error when the run was saved, and only a reason to fall back when it was not."""
+    if not path:
+        return None
+    try:
+        text = write_document(doc, path)
+    except InputError as err:
+        if saved is not None:
+            raise InputError(f"{err} (the run is stored all the same: {saved.uuid} in {saved.where})") from None
+        return None
+    if text is not None:
+        sys.stdout.write(text + "\n")
+        return None
+    return path
+
+
+def _keep_unstored(doc, folder: Path, uuid: str, reason: str) -> str:
+    """Write the JSON document of a run no store took into the charts folder, else the temp folder;
+    returns its path. StoreError when even that fails."""
+    import json
+    import tempfile
+
+    text, errors = json.dumps(doc, indent=2) + "\n", []
+    for place in (folder, Path(tempfile.gettempdir())):
+        path = str(place / f"unstored-run-{uuid}.json")
+        try:
+            write_text(path, text, "the unstored run's JSON")
+            return path
+        except InputError as err:
+            errors.append(str(err))
+    raise StoreError(f"run {uuid} is lost: {reason}; and {'; '.join(errors)}")
 
 
 def _steadiness(url, record):
@@ -216,4 +286,5 @@ def _run_meta(record, saved) -> dict:
     return {"uuid": record.uuid, "host_key": record.host_key, "hostname": record.hostname, "kind": record.kind,
             "status": record.status, "started_at": record.started_at, "ended_at": record.ended_at,
             "tag": record.tag, "note": record.note, "git_describe": record.git_describe,
-            "eaves_version": record.eaves_version, "params": record.params, "stored_in": saved.where}
+            "eaves_version": record.eaves_version, "params": record.params,
+            "stored_in": saved.where if saved is not None else None}

@@ -85,18 +85,18 @@ def _document(t) -> dict:
 
 def _print(t, written) -> None:
     from rich.console import Console
-    from rich.markup import escape
+    from eaves.plain import plain
     from rich.table import Table
 
     from eaves.commands._verdicts import change_cell, floor_cell, format_value, noise_summary, verdict_cell
 
-    console = Console(highlight=False)
+    console = Console(highlight=False, emoji=False)
     if not console.is_terminal:
-        console = Console(width=max(console.width, 160), highlight=False)
+        console = Console(width=max(console.width, 160), highlight=False, emoji=False)
     if not t.runs:
-        console.print(f"no complete survey runs of {escape(t.host)} in this period")
+        console.print(f"no complete survey runs of {plain(t.host)} in this period")
         return
-    console.print(f"{escape(t.host)}: {len(t.runs)} complete survey runs, {t.runs[0].started_at:%Y-%m-%d} .. "
+    console.print(f"{plain(t.host)}: {len(t.runs)} complete survey runs, {t.runs[0].started_at:%Y-%m-%d} .. "
                   f"{t.runs[-1].started_at:%Y-%m-%d}; baseline: median of the {t.window} runs before each; "
                   f"run-to-run noise from the {t.noise_runs} runs before each")
     table = Table(title="newest run against its baseline", title_justify="left", header_style="bold")
@@ -106,7 +106,7 @@ def _print(t, written) -> None:
         last = m.latest
         drifts = sum(p.drifted for p in m.points)
         c = last.comparison
-        table.add_row(escape(m.key.name()), str(len(m.points)), format_value(m.points[0].median, m.unit),
+        table.add_row(plain(m.key.name()), str(len(m.points)), format_value(m.points[0].median, m.unit),
                       format_value(last.baseline, m.unit), format_value(last.median, m.unit),
                       change_cell(c) if c else "-", floor_cell(c) if c else "-",
                       verdict_cell(c) if c else "no baseline", str(drifts))
@@ -117,7 +117,7 @@ def _print(t, written) -> None:
     for m in t.metrics:
         for p in m.points:
             if p.drifted:
-                console.print(f"drift: {escape(m.key.name())} run {p.run.id} {p.run.uuid[:8]} "
+                console.print(f"drift: {plain(m.key.name())} run {p.run.id} {plain(p.run.uuid[:8])} "
                               f"{p.run.started_at:%Y-%m-%d %H:%M}: {format_value(p.baseline, m.unit)} -> "
                               f"{format_value(p.median, m.unit)} ({p.comparison.change_pct:+.1f}%, "
                               f"{p.comparison.verdict})")
@@ -128,7 +128,7 @@ def _print(t, written) -> None:
 def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
                        threshold: float = DEFAULT_THRESHOLD, spooled: bool = False) -> int:
     """`eaves survey --check`: the saved run against its host's baseline; EXIT_WORSE on a regression."""
-    from rich.markup import escape
+    from eaves.plain import plain
 
     if spooled:  # the store was unreachable: the baseline is there too
         console.print("[yellow]check: skipped, the run was spooled, not stored; "
@@ -151,9 +151,9 @@ def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
     for key, unit, c in check.moved:
         style = "bold red" if c.worse else "green"
         floor = floor_cell(c)
-        console.print(f"[{style}]{c.verdict}[/]: {escape(key.name())} {format_value(c.before, unit)} -> "
+        console.print(f"[{style}]{c.verdict}[/]: {plain(key.name())} {format_value(c.before, unit)} -> "
                       f"{format_value(c.after, unit)} ({c.change_pct:+.1f}%"
-                      + (f"; run-to-run floor {escape(floor)}" if floor != "-" else "") + ")")
+                      + (f"; run-to-run floor {plain(floor)}" if floor != "-" else "") + ")")
     if check.regressions and len(check.baseline_runs) < MIN_BASELINE_RUNS:
         console.print(f"[yellow]check: the baseline has {len(check.baseline_runs)} run(s); failing on a "
                       f"regression needs {MIN_BASELINE_RUNS}, so this is reported, not failed[/]")
