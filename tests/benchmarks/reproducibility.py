@@ -5,7 +5,7 @@ For every headline figure of `eaves survey --quick --only memory` (the level cei
 strides, gather, scaling) it prints the run-to-run spread: the median absolute change between
 consecutive runs and the coefficient of variation of the run medians. The C/OpenMP loops of
 compare_memory.py run between the surveys at the same levels (the first sweep size of L1, the
-survey's L2 and DRAM working sets), 1 and all threads, so the host's own spread stands beside ours.
+survey's L2, L3 and DRAM working sets), 1 and all threads, so the host's own spread stands beside ours.
 It also counts what `eaves diff` flags over the consecutive pairs, and checks that every level's
 latency was taken at the same working set in every run.
 """
@@ -81,7 +81,7 @@ def main() -> int:
             print(f"run {i + 1}/{args.runs}: {uuids[-1][:8]}, level working sets "
                   + ", ".join(f"{k} {v >> 10} KiB" for k, v in sorted(sizes.items())), flush=True)
             if exe:
-                for level in ("L1", "L2", "DRAM"):
+                for level in ("L1", "L2", "L3", "DRAM"):
                     if level not in sizes:
                         continue
                     for kernel in KERNELS:
