@@ -17,7 +17,7 @@ from eaves.records import Figure
 from eaves.run_rows import RunRefused
 from eaves.store import Store
 from run_records import figures, placement, record
-from store_backends import backend_url, pg_schema_url, store_url  # noqa: F401  (fixtures)
+from store_backends import backend_url, pg_schema_url
 
 REAL_STORE = Path(__file__).parent / "fixtures" / "zen3-kvm-2cpu" / "ten-quick-surveys.db"
 DTYPES = ("fp64", "fp32", "fp16", "bf16", "int8", "int16")
@@ -145,3 +145,31 @@ def test_postgresql_columns_are_text_without_a_length(tmp_path):
     bounded = {(t, c): n for t, c, d, n in rows if d == "character varying"}
     assert bounded == {("runs", "uuid"): 36, ("runs", "ceilings_run_uuid"): 36, ("quarantine", "run_uuid"): 36}
     assert {("measurements", "variant"), ("runs", "tag"), ("placements", "layer")} <= {(t, c) for t, c, *_ in rows}
+
+
+def test_a_measured_survey_of_every_dtype_is_stored_whole_on_each_backend(store_url, tmp_path, monkeypatch, capsys):
+    # A real compute survey (short samples) of every dtype this host offers, with its real GEMM labels:
+    # on PostgreSQL it used to be refused (labels of 105-124 characters in String(64)) and spooled.
+    from eaves.cli import main
+
+    monkeypatch.chdir(tmp_path)
+    spool = tmp_path / "spool.db"
+    monkeypatch.setenv("EAVES_SPOOL", str(spool))
+    tag = incompressible(300, seed=5).replace("\x00", "")
+    code = main(["survey", "--quick", "--only", "compute", "--threads", "1", "--samples", "2",
+                 "--sample-seconds", "0.002", "--db", store_url, "--tag", tag, "--json", "doc.json"])
+    capsys.readouterr()
+    assert code == 0
+    assert not spool.exists()  # stored where asked, nothing spooled
+    import json
+
+    doc = json.loads((tmp_path / "doc.json").read_text(encoding="utf-8"))
+    store = Store(store_url)
+    run = store.load_run(store.resolve_run(doc["run"]["uuid"]))
+    store.close()
+    assert run.summary.tag == tag and run.summary.status == "complete"
+    stored = sorted((f.suite, f.kernel, f.dtype, f.variant or "", f.shape or "") for f in run.figures)
+    measured = sorted((f["suite"], f["kernel"], f["dtype"], f.get("variant") or "", f.get("shape") or "")
+                      for f in doc["figures"])
+    assert stored == measured
+    assert {"fp64", "fp32"} <= {f.dtype for f in run.figures if f.suite == "gemm"}
