@@ -26,7 +26,11 @@ from eaves.noise import RunNoise
 DEFAULT_THRESHOLD = 0.03  # 3 %: below this a change is not worth acting on, whatever the test says
 DEFAULT_ALPHA = 0.05
 EXACT_MAX_SMALLER = 8  # exact null distribution when the smaller sample has at most this many
-FASTER, SLOWER, NOISE = "faster", "slower", "within noise"
+# The three verdicts on a figure measured twice: it moved the good way (a higher rate or efficiency, a
+# shorter time or latency), the bad way, or by nothing that counts. The same words in every table,
+# message and JSON document (diff, trend, gate, survey --check, report).
+GAINED, LOST, HELD = "gained", "lost", "held"
+VERDICTS = (GAINED, LOST, HELD)
 
 
 @dataclass(frozen=True)
@@ -48,7 +52,7 @@ class Comparison:
     change: float  # (after - before) / before, a fraction
     p_value: Optional[float]  # None when there were too few samples to test
     method: str  # "exact" | "normal" | "ranges" (too few samples: ranges must not overlap)
-    verdict: str  # faster | slower | within noise
+    verdict: str  # gained | lost | held (VERDICTS)
     lower_is_better: bool
     n_before: int
     n_after: int
@@ -65,7 +69,7 @@ class Comparison:
 
     @property
     def worse(self) -> bool:
-        return self.verdict == SLOWER
+        return self.verdict == LOST
 
 
 def _ranks(values: Sequence[float]) -> tuple[list[float], list[int]]:
@@ -140,7 +144,8 @@ def smallest_p(n1: int, n2: int) -> float:
 def compare(before: Sequence[float], after: Sequence[float], lower_is_better: bool = False,
             threshold: float = DEFAULT_THRESHOLD, alpha: float = DEFAULT_ALPHA,
             reference: Optional[float] = None, noise: Optional[RunNoise] = None) -> Comparison:
-    """Verdict on one figure. Faster means a higher rate, or a lower time or latency.
+    """Verdict on one figure: GAINED for a higher rate, or a lower time or latency; LOST the other way;
+    HELD when the change does not count.
 
     When so few samples are given that even complete separation cannot reach `alpha` (for example
     one sample each), the test cannot speak; the change then counts if it passes the threshold and
@@ -162,9 +167,9 @@ def compare(before: Sequence[float], after: Sequence[float], lower_is_better: bo
     else:
         test = mann_whitney(before, after)
         p_value, method, apart = test.p_value, test.method, test.p_value < alpha
-    verdict = NOISE
+    verdict = HELD
     if apart and abs(change) >= max(threshold, noise.floor if noise else 0.0) and change != 0:
         better = change < 0 if lower_is_better else change > 0
-        verdict = FASTER if better else SLOWER
+        verdict = GAINED if better else LOST
     return Comparison(m_before, m_after, change, p_value, method, verdict, lower_is_better,
                       len(before), len(after), noise)

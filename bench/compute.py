@@ -14,7 +14,7 @@ from typing import Any, Callable, Optional, Sequence
 import numpy as np
 
 from eaves.errors import BrokenKernelError, InputError
-from eaves.peak import (MAX_TILE_MACS_PER_CYCLE, TOLERANCE, Bound, check_below, infer_madd_units,
+from eaves.peak import (MAX_TILE_MACS_PER_CYCLE, TOLERANCE, TheoreticalBound, check_below, infer_madd_units,
                         infer_tile_macs_per_cycle, lanes_of, theoretical_ops_per_s, units_per_cycle)
 from eaves.records import Figure, StepFailure
 from eaves.supervisor import Steps, Supervisor, step_seconds
@@ -193,7 +193,7 @@ def peak_figures(host, runs: Sequence[PeakRun], clock_hz: float) -> list[Figure]
         cores = cores_of(run)
         lanes, units, ratio, more = terms
         label = "MACs per cycle (tile unit)" if k.spec.is_tile else "lanes"
-        bound = Bound(theoretical_ops_per_s(cores, clock_hz, lanes, units), cores, clock_hz, lanes, units,
+        bound = TheoreticalBound(theoretical_ops_per_s(cores, clock_hz, lanes, units), cores, clock_hz, lanes, units,
                       lanes_label=label)
         check_below(k.name, max(run.rates), bound)
         why = "; ".join(f"{name} unavailable: {reason}" for name, reason in (run.unavailable or {}).items())

@@ -4,14 +4,17 @@ samples' (the rank test) and the figure's run-to-run noise on its host (eaves.no
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Mapping, Optional
+from typing import TYPE_CHECKING, Mapping, Optional, Sequence
 
-from eaves.compare import DEFAULT_ALPHA, DEFAULT_THRESHOLD, SLOWER, Comparison, compare
+from eaves.compare import DEFAULT_ALPHA, DEFAULT_THRESHOLD, LOST, Comparison, compare
 from eaves.errors import InputError, StoreError
 from eaves.gate import LayerComparison, compare_layers
 from eaves.metrics import MetricKey, ceiling_figures, lower_is_better
 from eaves.noise import DEFAULT_NOISE_RUNS, RunNoise, default_noise, host_noise, larger, layer_noise
-from eaves.records import RunSummary, StoredRun
+from eaves.records import HostSummary, RunSummary, StoredRun
+
+if TYPE_CHECKING:
+    from eaves.store import Store
 
 
 @dataclass(frozen=True)
@@ -38,17 +41,17 @@ class RunDiff:
     @property
     def worse(self) -> tuple[str, ...]:
         """Names of everything that got worse beyond noise."""
-        names = [m.key.name() for m in self.metrics if m.comparison and m.comparison.verdict == SLOWER]
+        names = [m.key.name() for m in self.metrics if m.comparison and m.comparison.verdict == LOST]
         if self.layers:
             names += [c.layer for c in self.layers.worse]
         return tuple(names)
 
 
-def resolve_ref(store, ref: str, hosts: Optional[list] = None) -> int:
+def resolve_ref(store: Store, ref: str, hosts: Optional[Sequence[HostSummary]] = None) -> int:
     """Run id of a reference: a host key or hostname (its newest complete survey), else a run id,
     UUID or UUID prefix. Unknown references are an InputError."""
     hosts = store.hosts() if hosts is None else hosts
-    if any(ref in (h[0], h[1]) for h in hosts):
+    if any(ref in (h.host_key, h.hostname) for h in hosts):
         run_id = store.latest_complete_run(ref, kind="survey") or store.latest_complete_run(ref, kind="layers")
         if run_id is None:
             raise InputError(f"{ref}: host has no complete run in {store.shown_url}")
@@ -61,7 +64,7 @@ def resolve_ref(store, ref: str, hosts: Optional[list] = None) -> int:
         raise
 
 
-def diff_noise(store, before: StoredRun, after: StoredRun, k: int = DEFAULT_NOISE_RUNS,
+def diff_noise(store: Store, before: StoredRun, after: StoredRun, k: int = DEFAULT_NOISE_RUNS,
                ) -> tuple[dict[MetricKey, RunNoise], dict[str, RunNoise]]:
     """The run-to-run noise of ceilings and layers for a diff: learned on each run's host from its
     newest k complete runs of that kind started by the later of the two, the "after" run left out

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
-import json
 import math
 from typing import Any, Mapping, Optional, Sequence
 
@@ -80,7 +79,7 @@ def run_document(run: dict[str, Any], host: dict[str, Any], figures: Sequence[Fi
         "failures": list((run.get("params") or {}).get("failures") or []),
     }
     if placements:
-        doc["layers"] = [dataclasses.asdict(p) for p in placements]
+        doc["layers"] = [p.to_dict() for p in placements]
     return _clean(doc)
 
 
@@ -100,13 +99,20 @@ def _compute_rows(figures: Sequence[Figure]) -> list[dict[str, Any]]:
     return rows
 
 
-def write_document(doc: dict[str, Any], path: str) -> Optional[str]:
-    """Write to a file (eaves.outfile: through symlinks, into devices, atomically for a regular file),
-    or return the text when `path` is '-' (the caller prints it)."""
-    text = json.dumps(doc, indent=2, sort_keys=False)
-    if path == "-":
-        return text
-    from eaves.outfile import write_text
+PLACEMENTS_SCHEMA = "eaves.placements"
+PLACEMENTS_VERSION = 1
 
-    write_text(path, text + "\n", "--json")
-    return None
+
+def placements_document(ceilings_run: str, host_key: str, placed: Sequence[PlacedLayer],
+                        projections: Sequence[Any] = (), curves: Optional[Mapping[str, Sequence[Any]]] = None,
+                        stored_run: Optional[str] = None, **more: Any) -> dict[str, Any]:
+    """Layers placed under a survey's roofs (eaves place, eaves profile-torch): every placement, the
+    --as-dtype projections, the --batching curves, the run they were stored as; `more`: keys of the
+    command (a PyTorch model's name, shape, whole-pass times ...)."""
+    return _clean({"schema": PLACEMENTS_SCHEMA, "schema_version": PLACEMENTS_VERSION,
+                   "ceilings_run": ceilings_run, "host_key": host_key, "stored_run": stored_run,
+                   "layers": [p.to_dict() for p in placed],
+                   "as_dtype": [dataclasses.asdict(p) for p in projections],
+                   "batching": {name: [dataclasses.asdict(b) for b in pts] for name, pts in (curves or {}).items()},
+                   **more})
+

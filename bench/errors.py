@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 EXIT_OK = 0
-EXIT_WORSE = 1  # a comparison found something worse beyond noise (diff, gate, survey --check)
+EXIT_WORSE = 1  # a comparison found a figure lost (diff, trend, gate, survey --check)
 EXIT_INPUT = 2  # bad input: arguments, files, sizes
 EXIT_STORE = 3  # the store cannot be opened, read or reached
 EXIT_BROKEN = 4  # a survey step gave no figure: hung, crashed, wrong checksum or above the physical bound

@@ -10,12 +10,16 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Mapping, Optional, Sequence
+from typing import TYPE_CHECKING, Callable, Mapping, Optional, Sequence
 
-from eaves.compare import DEFAULT_ALPHA, SLOWER, Comparison, compare
+from eaves.compare import DEFAULT_ALPHA, LOST, Comparison, compare
 from eaves.errors import InputError, StoreError
 from eaves.noise import DEFAULT_NOISE_RUNS, LAYERS, RunNoise, default_noise, layer_noise
 from eaves.records import PlacedLayer, RunSummary
+
+if TYPE_CHECKING:
+    from eaves.roofline import HostModel
+    from eaves.store import Store
 
 DEFAULT_MAX_LOSS = 0.05  # 5 % of efficiency
 LAYER_FILE_SUFFIXES = (".csv", ".json")
@@ -47,10 +51,12 @@ class LayerChange:
 
     @property
     def before_efficiency(self) -> float:
+        """Efficiency against the roof before (the median of its samples' efficiencies)."""
         return self.comparison.before
 
     @property
     def after_efficiency(self) -> float:
+        """Efficiency against the roof after."""
         return self.comparison.after
 
 
@@ -65,7 +71,8 @@ class LayerComparison:
 
     @property
     def worse(self) -> tuple[LayerChange, ...]:
-        return tuple(c for c in self.changes if c.comparison.verdict == SLOWER)
+        """The layers whose efficiency fell beyond noise."""
+        return tuple(c for c in self.changes if c.comparison.verdict == LOST)
 
 
 def efficiency_samples(p: PlacedLayer) -> tuple[float, ...]:
@@ -99,7 +106,7 @@ def is_layer_file(ref: str) -> bool:
     return Path(ref).is_file() or "/" in ref or ref.lower().endswith(LAYER_FILE_SUFFIXES)
 
 
-def load_layer_set(store, ref: str, model: Callable[[], object], role: str) -> LayerSet:
+def load_layer_set(store: Store, ref: str, model: Callable[[], HostModel], role: str) -> LayerSet:
     """The layers of `ref`: a stored run's placements, or a layer file placed under `model()`."""
     if is_layer_file(ref):
         from eaves.layerfile import read_layers
@@ -122,7 +129,7 @@ def load_layer_set(store, ref: str, model: Callable[[], object], role: str) -> L
                     run.summary)
 
 
-def gate_noise(store, baseline: LayerSet, candidate: LayerSet, k: int = DEFAULT_NOISE_RUNS) -> dict[str, RunNoise]:
+def gate_noise(store: Store, baseline: LayerSet, candidate: LayerSet, k: int = DEFAULT_NOISE_RUNS) -> dict[str, RunNoise]:
     """Per layer the run-to-run noise on the candidate's host (else the baseline's): its newest k complete
     layers runs started by the later stored side, the candidate's own run left out."""
     host = candidate.host_key or baseline.host_key

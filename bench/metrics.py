@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import fnmatch
 from dataclasses import dataclass
-from typing import Iterable, Optional, Sequence
+from typing import Iterable, Optional, Sequence, TypeVar
 
 from eaves.ceilings import KERNELS, level_key
-from eaves.records import Figure
+from eaves.records import Figure, FigureSummary
+
+F = TypeVar("F", Figure, FigureSummary)  # a stored figure with or without its samples
 
 # Suites whose figures are ceilings (the sweep is every working-set point: a curve, not a ceiling).
 CEILING_SUITES = ("memory", "latency", "stride", "gather", "scaling", "clock", "compute", "gemm")
@@ -45,48 +47,30 @@ class MetricKey:
             parts.append(self.variant)
         return "/".join(parts) + f"/{self.threads}t"
 
-    def sort_key(self) -> tuple:
+    def sort_key(self) -> tuple[object, ...]:
+        """Table order: suite, level, threads, kernel, then the rest."""
         return (CEILING_SUITES.index(self.suite) if self.suite in CEILING_SUITES else 99,
                 level_key(self.cache_level), self.threads,
                 KERNELS.index(self.kernel) if self.kernel in KERNELS else 9, self.kernel, self.dtype,
                 self.stride_elems or 0, self.shape or "", self.variant or "")
 
 
-@dataclass(frozen=True)
-class FigureSummary:
-    """A stored figure without its samples: enough to follow a long history quickly."""
-
-    id: int
-    run_id: int
-    suite: str
-    kernel: str
-    variant: Optional[str]
-    dtype: str
-    threads: int
-    cache_level: Optional[str]
-    stride_elems: Optional[int]
-    shape: Optional[str]
-    unit: str
-    median: float
-    q1: float
-    q3: float
-
-
 def lower_is_better(unit: str) -> bool:
-    """Latency and time: lower is faster; every rate: higher is faster."""
+    """Latency and time: lower is better; every rate: higher is better."""
     return unit in ("ns_per_load", "seconds")
 
 
-def key_of(f: Figure) -> MetricKey:
+def key_of(f: Figure | FigureSummary) -> MetricKey:
+    """The identity of a figure across runs (variants that only say how a ceiling was reached left out)."""
     variant = None if f.suite in BEST_OF_VARIANTS else f.variant
     return MetricKey(f.suite, f.kernel, variant, f.dtype, f.threads, f.cache_level, f.stride_elems, f.shape)
 
 
-def ceiling_figures(figures: Iterable[Figure]) -> dict[MetricKey, Figure]:
+def ceiling_figures(figures: Iterable[F]) -> dict[MetricKey, F]:
     """Every ceiling figure of a run by its key; where several figures share a key (variants of a
     memory kernel, multiply-add kernels), the one with the best median, as the ceiling tables pick.
     Works on anything with a figure's identity fields, `unit` and `median` (Figure, FigureSummary)."""
-    best: dict[MetricKey, tuple[float, Figure]] = {}
+    best: dict[MetricKey, tuple[float, F]] = {}
     for f in figures:
         if f.suite not in CEILING_SUITES or (f.suite == "memory" and not f.cache_level):
             continue

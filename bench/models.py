@@ -10,9 +10,8 @@ from sqlalchemy import JSON, BigInteger, DateTime, Float, ForeignKey, Index, Int
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
 # The alembic revision this eaves writes and expects (bench/migrations/versions); a test checks
-# it is the head of the migration scripts. SCHEMA_VERSION counts the revisions.
-SCHEMA_REVISION = "0003"
-SCHEMA_VERSION = 3
+# it is the head of the migration scripts.
+SCHEMA_REVISION = "0004"
 
 # Strings are Text on every backend (PostgreSQL refused a VARCHAR(64) GEMM label that SQLite kept).
 # A bound stays only where it is part of the data (a UUID's 36 characters) or where an index needs
@@ -29,10 +28,12 @@ opt_text = Annotated[Optional[str], mapped_column(Text, nullable=True)]
 
 
 def utcnow() -> dt.datetime:
+    """Now, in UTC (every stored time is)."""
     return dt.datetime.now(dt.timezone.utc)
 
 
 def new_uuid() -> str:
+    """A fresh random run UUID (version 4)."""
     return str(uuidlib.uuid4())
 
 
@@ -134,7 +135,23 @@ class Placement(Base):
     efficiency: Mapped[float] = mapped_column(Float)
     bound: Mapped[plain_text]  # memory | compute | impossible
     roof: Mapped[plain_text]
-    extra: Mapped[dict[str, Any]]
+    # the roofs the layer was held against and how close it came (in `extra` until migration 0004)
+    macs: Mapped[opt_float]
+    where: Mapped[plain_text]
+    memory_roof: Mapped[plain_text]
+    memory_roof_bytes_per_s: Mapped[float] = mapped_column(Float)
+    memory_roof_kernel: Mapped[plain_text]
+    compute_roof: Mapped[plain_text]
+    compute_roof_ops_per_s: Mapped[float] = mapped_column(Float)
+    ridge_flops_per_byte: Mapped[float] = mapped_column(Float)
+    memory_efficiency: Mapped[float] = mapped_column(Float)
+    compute_efficiency: Mapped[float] = mapped_column(Float)
+    achievable_efficiency: Mapped[opt_float]
+    consistent_level: Mapped[opt_text]
+    threads_measured: Mapped[int] = mapped_column(Integer)
+    threads_match: Mapped[plain_text]  # exact | nearest
+    memory_threads_measured: Mapped[int] = mapped_column(Integer)
+    extra: Mapped[dict[str, Any]]  # what only some placements have: items_per_s, reason
     run: Mapped[Run] = relationship(back_populates="placements")
 
 

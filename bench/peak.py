@@ -26,7 +26,7 @@ def lanes_of(vector_bits: int, math_bits: int) -> int:
 
 
 @dataclass(frozen=True)
-class Bound:
+class TheoreticalBound:
     """A theoretical bound and how it was reached; `madd_units` is inferred from a measurement."""
 
     ops_per_s: float
@@ -72,7 +72,7 @@ def infer_tile_macs_per_cycle(ops_per_s_one_core: float, clock_hz: float, dtype:
     return min(cap, 2 ** max(0, math.ceil(math.log2(max(per_cycle, 1.0) / (1 + TOLERANCE)))))
 
 
-def check_below(name: str, measured_ops_per_s: float, bound: Bound, tolerance: float = TOLERANCE) -> None:
+def check_below(name: str, measured_ops_per_s: float, bound: TheoreticalBound, tolerance: float = TOLERANCE) -> None:
     """Raise BrokenKernelError naming the kernel when a rate exceeds the bound by more than `tolerance`."""
     if measured_ops_per_s > bound.ops_per_s * (1 + tolerance):
         raise BrokenKernelError(

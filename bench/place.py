@@ -9,7 +9,7 @@ multiply-add peak (the GEMM figure when no peak was measured).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Iterable, Optional, Sequence
+from typing import Any, Iterable, Optional, Sequence
 
 from eaves.errors import InputError
 from eaves.layers import BATCHABLE, DTYPE_BYTES, LayerCounts, LayerSpec, count, with_batch
@@ -80,11 +80,12 @@ class BatchPoint:
 class Placer:
     """Places layers under one model, resolving each (dtype, threads) pair's roofs once."""
 
-    def __init__(self, model: HostModel):
+    def __init__(self, model: HostModel) -> None:
         self.model = model
         self._cache: dict[tuple[str, int], Optional[RoofSet]] = {}
 
     def roofs(self, dtype: str, threads: int) -> Optional[RoofSet]:
+        """The roofs of a (dtype, threads) pair; None when the model has no compute roof for the dtype."""
         key = (dtype, threads)
         if key not in self._cache:
             self._cache[key] = self._resolve(dtype, threads)
@@ -148,18 +149,7 @@ class Placer:
             reason = (f"achieved {flops_per_s if counts.flops else bytes_per_s:.4g} "
                       f"{'FLOP/s' if counts.flops else 'B/s'} is above every roof of {spec.dtype} at "
                       f"{roofs.compute_match.measured} threads ({ceiling_max:.4g}): check the counts, dtype or threads")
-        extra = {
-            "macs": counts.macs, "where": spec.where, "working_set_bytes": counts.bytes,
-            "memory_roof": c.memory.name, "memory_roof_bytes_per_s": c.memory.value,
-            "memory_roof_kernel": c.memory.kernel,
-            "compute_roof": c.compute.name, "compute_roof_ops_per_s": c.compute.value,
-            "ridge_flops_per_byte": c.ridge_flops_per_byte,
-            "memory_efficiency": memory_eff, "compute_efficiency": compute_eff,
-            "achievable_efficiency": flops_per_s / roofs.achievable.value if roofs.achievable else None,
-            "headroom": 1.0 / efficiency, "consistent_level": _consistent_level(c.memory, roofs, bytes_per_s),
-            "threads_measured": roofs.compute_match.measured, "threads_match": roofs.compute_match.how,
-            "memory_threads_measured": roofs.memory_match.measured,
-        }
+        extra: dict[str, Any] = {}
         if spec.batch:
             extra["items_per_s"] = spec.batch / seconds  # throughput = batch / latency (common practice)
         if reason:
@@ -169,7 +159,15 @@ class Placer:
                            flops=counts.flops, bytes=counts.bytes, flops_per_byte=intensity,
                            flops_per_s=flops_per_s, bytes_per_s=bytes_per_s,
                            attainable_flops_per_s=c.attainable_flops_per_s, efficiency=efficiency,
-                           bound=bound, roof=roof, extra=extra)
+                           bound=bound, roof=roof, macs=counts.macs, where=spec.where,
+                           memory_roof=c.memory.name, memory_roof_bytes_per_s=c.memory.value,
+                           memory_roof_kernel=c.memory.kernel, compute_roof=c.compute.name,
+                           compute_roof_ops_per_s=c.compute.value, ridge_flops_per_byte=c.ridge_flops_per_byte,
+                           memory_efficiency=memory_eff, compute_efficiency=compute_eff,
+                           achievable_efficiency=flops_per_s / roofs.achievable.value if roofs.achievable else None,
+                           consistent_level=_consistent_level(c.memory, roofs, bytes_per_s),
+                           threads_measured=roofs.compute_match.measured, threads_match=roofs.compute_match.how,
+                           memory_threads_measured=roofs.memory_match.measured, extra=extra)
 
     def project(self, spec: LayerSpec, dtype: str) -> Projection:
         """Where the layer would move at another dtype: bytes, intensity and compute roof recomputed."""

@@ -43,7 +43,9 @@ class Figure:
 
 @dataclass(frozen=True)
 class PlacedLayer:
-    """One layer placed under a roof (filled by the analyzer)."""
+    """One layer placed under a roof (filled by the analyzer): its counts, its rates, the roofs it was
+    held against and how close it came. `extra` holds what only some placements have (items_per_s
+    for a batched layer, the reason of an impossible one)."""
 
     layer: str
     kind: str
@@ -61,7 +63,50 @@ class PlacedLayer:
     efficiency: float
     bound: str
     roof: str
+    macs: Optional[float]  # None when the layer's FLOPs were given without a shape
+    where: str  # "file:line" of the layer file it came from ("" if none)
+    memory_roof: str  # the level whose roof the layer is held against
+    memory_roof_bytes_per_s: float
+    memory_roof_kernel: str
+    compute_roof: str
+    compute_roof_ops_per_s: float
+    ridge_flops_per_byte: float
+    memory_efficiency: float  # achieved bandwidth over the memory roof
+    compute_efficiency: float  # achieved FLOP/s over the compute roof
+    achievable_efficiency: Optional[float]  # over the best GEMM; None where no GEMM was measured
+    consistent_level: Optional[str]  # the level whose roof covers the achieved bandwidth; None if none does
+    threads_measured: int  # the measured thread count of the compute roof
+    threads_match: str  # exact | nearest
+    memory_threads_measured: int  # the measured thread count of the memory roofs
     extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def working_set_bytes(self) -> float:
+        """The compulsory working set: the layer's bytes."""
+        return self.bytes
+
+    @property
+    def headroom(self) -> float:
+        """How many times faster the layer could run at its roof."""
+        return 1.0 / self.efficiency
+
+    def to_dict(self) -> dict[str, Any]:
+        """The placement as the JSON documents carry it: the counts and rates at the top, the roofs
+        and efficiencies under "extra" (with what only some placements have), as since schema_version 1."""
+        out = {name: getattr(self, name) for name in PLACED_TOP}
+        out["extra"] = {**{name: getattr(self, name) for name in PLACED_DETAIL}, **self.extra}
+        return out
+
+
+# The top-level keys of a placement in the JSON documents, and the keys every placement has under its
+# "extra" there, in the order they have always been written in.
+PLACED_TOP = ("layer", "kind", "dtype", "threads", "batch", "seconds", "samples", "flops", "bytes",
+              "flops_per_byte", "flops_per_s", "bytes_per_s", "attainable_flops_per_s", "efficiency",
+              "bound", "roof")
+PLACED_DETAIL = ("macs", "where", "working_set_bytes", "memory_roof", "memory_roof_bytes_per_s",
+                 "memory_roof_kernel", "compute_roof", "compute_roof_ops_per_s", "ridge_flops_per_byte",
+                 "memory_efficiency", "compute_efficiency", "achievable_efficiency", "headroom",
+                 "consistent_level", "threads_measured", "threads_match", "memory_threads_measured")
 
 
 @dataclass(frozen=True)
@@ -131,3 +176,54 @@ class StoredRun:
     ceilings_run_uuid: Optional[str]
     figures: tuple[Figure, ...]
     placements: tuple[PlacedLayer, ...]
+
+
+@dataclass(frozen=True)
+class HostSummary:
+    """A host of a store as listed: its key and name, how many runs it has, and when the last started."""
+
+    host_key: str
+    hostname: str
+    runs: int
+    last_run: Optional[dt.datetime]
+    fingerprint: str = ""  # the hardware fingerprint (eaves.host.HostFacts.fingerprint)
+    first_seen: Optional[dt.datetime] = None  # when the store first saw this host
+
+
+@dataclass(frozen=True)
+class RunRef:
+    """A run in a history: enough to label a point."""
+
+    id: int
+    uuid: str
+    started_at: dt.datetime
+    tag: Optional[str]
+
+
+@dataclass(frozen=True)
+class FigureSummary:
+    """A stored figure without its samples: enough to follow a long history quickly."""
+
+    id: int
+    run_id: int
+    suite: str
+    kernel: str
+    variant: Optional[str]
+    dtype: str
+    threads: int
+    cache_level: Optional[str]
+    stride_elems: Optional[int]
+    shape: Optional[str]
+    unit: str
+    median: float
+    q1: float
+    q3: float
+
+
+@dataclass(frozen=True)
+class LayerTime:
+    """One placed layer's median time in a stored run: what a layer's run-to-run noise is learned from."""
+
+    run_id: int
+    layer: str
+    seconds: float

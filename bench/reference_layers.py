@@ -20,7 +20,7 @@ from eaves.threads import use_threads
 from eaves.timing import TimingPolicy, repeat_callable, sample
 
 SCENARIO = "reedling (Fennick Marsh field lab bird-call tagger)"
-DTYPES = {"fp32": np.float32, "fp64": np.float64}
+NUMPY_TYPES = {"fp32": np.float32, "fp64": np.float64}  # the dtypes the reference layers run in
 DENSE_BATCHES = (1, 2, 4, 8, 16, 32, 64, 128, 256)
 SMALL_DENSE_BATCHES = (1, 16, 256)
 
@@ -82,7 +82,7 @@ def reference_layers(small: bool = False, dtypes: Iterable[str] = ("fp32", "fp64
     batches = SMALL_DENSE_BATCHES if small else DENSE_BATCHES
     out: list[ReferenceLayer] = []
     for d in dtypes:
-        t = DTYPES[d]
+        t = NUMPY_TYPES[d]
 
         def stem(t=t):
             rnd = _rng(t)

@@ -13,13 +13,21 @@ import html
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Optional, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Optional, Sequence
 
 from eaves.ceilings import latency_ceilings, memory_ceilings
 from eaves.errors import InputError
 from eaves.plain import visible
 from eaves.records import PlacedLayer, RunSummary, StoredRun
-from eaves.units import format_bytes, format_rate
+from eaves.units import format_bytes, format_figure, format_rate
+
+if TYPE_CHECKING:
+    from eaves.metrics import MetricKey
+    from eaves.noise import RunNoise
+    from eaves.store import Store
+    from eaves.trend import MetricTrend
+
+    Steadiness = Mapping[MetricKey, RunNoise]
 
 MAX_TREND_PANELS = 12  # drifted ceilings first, then the main ones; all are listed in the trend table
 FACTS = ("hostname", "vendor", "model", "arch", "logical_cpus", "physical_cores", "sockets", "numa_nodes",
@@ -56,6 +64,7 @@ def esc(value: Any) -> str:
 
 
 def svg_img(svg: str, alt: str) -> str:
+    """An SVG drawing as an <img> with a caption, embedded as a data URI (no file, no network)."""
     data = base64.b64encode(svg.encode("utf-8")).decode("ascii")
     return f'<figure><img alt="{esc(alt)}" src="data:image/svg+xml;base64,{data}"><figcaption>{esc(alt)}</figcaption></figure>'
 
@@ -84,7 +93,7 @@ def _facts(run: StoredRun) -> str:
 STEADY_HEAD = "run-to-run spread"
 
 
-def _steady(steady, suite: str, **fields) -> tuple:
+def _steady(steady: Optional[Steadiness], suite: str, **fields: Any) -> tuple[str, ...]:
     """The run-to-run cell of one row, or no cell at all when the host has no such history."""
     if not steady:
         return ()
@@ -94,7 +103,7 @@ def _steady(steady, suite: str, **fields) -> tuple:
     return (f"{n.spread:.1%} ({n.runs} runs)" if n else "-",)
 
 
-def _ceilings(run: StoredRun, steady=None) -> str:
+def _ceilings(run: StoredRun, steady: Optional[Steadiness] = None) -> str:
     from eaves.compute import compute_ceilings
 
     figs = run.figures
@@ -130,7 +139,7 @@ def _ceilings(run: StoredRun, steady=None) -> str:
     return "".join(parts)
 
 
-def _steadiness(store, s: RunSummary) -> dict:
+def _steadiness(store: Store, s: RunSummary) -> dict[MetricKey, RunNoise]:
     from eaves.noise import steadiness
 
     return steadiness(store, s.host_key, "survey", until=s.started_at)
@@ -169,8 +178,7 @@ def _layers(placed: Sequence[PlacedLayer]) -> str:
                     f"{p.efficiency:.1%}", p.bound, p.roof) for p in placed], left=3)
 
 
-def _trends(store, host: str, window: int) -> tuple[str, int]:
-    from eaves.commands._verdicts import format_value
+def _trends(store: Store, host: str, window: int) -> tuple[str, int]:
     from eaves.trend import trend
     from eaves.trend_chart import trend_grid_svg
 
@@ -181,8 +189,8 @@ def _trends(store, host: str, window: int) -> tuple[str, int]:
     rows = []
     for m in t.metrics:
         c = m.latest.comparison
-        rows.append((m.key.name(), len(m.points), format_value(m.latest.baseline, m.unit),
-                     format_value(m.latest.median, m.unit), f"{c.change_pct:+.1f}%" if c else "-",
+        rows.append((m.key.name(), len(m.points), format_figure(m.latest.baseline, m.unit),
+                     format_figure(m.latest.median, m.unit), f"{c.change_pct:+.1f}%" if c else "-",
                      c.verdict if c else "no baseline", sum(p.drifted for p in m.points)))
     shown = sorted(multi, key=_panel_order)[:MAX_TREND_PANELS]
     charts = svg_img(trend_grid_svg(shown, host), "ceilings over time")
@@ -193,7 +201,7 @@ def _trends(store, host: str, window: int) -> tuple[str, int]:
     return table + note + charts, 1
 
 
-def _panel_order(m) -> tuple:
+def _panel_order(m: MetricTrend) -> tuple[Any, ...]:
     """Drifted first; then bandwidth at the most threads, latency, compute peaks; then the rest."""
     k = m.key
     main = {"memory": 0, "latency": 1, "compute": 2}.get(k.suite, 3)
@@ -208,7 +216,7 @@ def _runs(runs: Sequence[RunSummary]) -> str:
                     r.git_describe or "", r.note or "", r.n_figures, r.n_placements) for r in runs], left=8)
 
 
-def build_report(store, host: str, window: int = 5) -> Report:
+def build_report(store: Store, host: str, window: int = 5) -> Report:
     """The page for `host` (host key or hostname): its newest complete survey and layers runs."""
     survey_id = store.latest_complete_run(host, kind="survey")
     if survey_id is None:

@@ -16,10 +16,13 @@ reported beside every placement.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Iterable, Optional
+from typing import TYPE_CHECKING, Any, Iterable, Optional
 
 from eaves.errors import InputError, StoreError
 from eaves.records import Figure
+
+if TYPE_CHECKING:
+    from eaves.store import Store
 
 LEVELS = ("L1", "L2", "L3", "DRAM")  # fastest first
 MEMORY_KERNELS = ("read", "write", "copy", "axpy")
@@ -60,6 +63,7 @@ class ThreadMatch:
 
     @property
     def how(self) -> str:
+        """"exact" or "nearest"."""
         return "exact" if self.requested == self.measured else "nearest"
 
 
@@ -74,11 +78,13 @@ class HostModel:
     ridges: tuple[Ridge, ...]
 
     def thread_counts(self, side: str = "memory", dtype: Optional[str] = None) -> list[int]:
+        """The thread counts measured on one side (compute: of one dtype), ascending."""
         roofs = self.memory if side == "memory" else [r for r in self.compute if r.dtype == dtype]
         return sorted({r.threads for r in roofs})
 
     def dtypes(self) -> list[str]:
-        return sorted({r.dtype for r in self.compute})
+        """Every dtype with a compute roof."""
+        return sorted({r.dtype for r in self.compute if r.dtype})
 
     def match_threads(self, threads: int, side: str = "memory", dtype: Optional[str] = None) -> Optional[ThreadMatch]:
         """The measured thread count used for `threads`: exact, else nearest (tie: the larger)."""
@@ -110,8 +116,8 @@ def attainable(intensity: float, compute_roof: float, memory_roof: float) -> flo
     return min(compute_roof, intensity * memory_roof)
 
 
-def _best(figures: Iterable[Figure]) -> dict[tuple, Figure]:
-    best: dict[tuple, Figure] = {}
+def _best(figures: Iterable[tuple[Figure, tuple[Any, ...]]]) -> dict[tuple[Any, ...], Figure]:
+    best: dict[tuple[Any, ...], Figure] = {}
     for f, key in figures:
         if key not in best or f.median > best[key].median:
             best[key] = f
@@ -119,7 +125,7 @@ def _best(figures: Iterable[Figure]) -> dict[tuple, Figure]:
 
 
 def model_from_figures(figures: Iterable[Figure], run_uuid: str, host_key: str,
-                       host_facts: Optional[dict] = None) -> HostModel:
+                       host_facts: Optional[dict[str, Any]] = None) -> HostModel:
     """Build the model from a run's figures; cache capacities come from `host_facts` when given."""
     figures = list(figures)
     mem = _best((f, (f.cache_level, f.threads)) for f in figures
@@ -152,7 +158,7 @@ def model_from_figures(figures: Iterable[Figure], run_uuid: str, host_key: str,
     return HostModel(run_uuid, host_key, memory, compute, ridges)
 
 
-def capacities_from_facts(host_facts: dict, threads: int = 1) -> dict[str, int]:
+def capacities_from_facts(host_facts: dict[str, Any], threads: int = 1) -> dict[str, int]:
     """Bytes each cache level holds for `threads` threads, from the stored host facts' caches."""
     out: dict[str, int] = {}
     for c in host_facts.get("caches") or []:
@@ -165,7 +171,7 @@ def capacities_from_facts(host_facts: dict, threads: int = 1) -> dict[str, int]:
     return out
 
 
-def model_from_store(store, run_ref: Optional[str] = None, host: Optional[str] = None) -> HostModel:
+def model_from_store(store: Store, run_ref: Optional[str] = None, host: Optional[str] = None) -> HostModel:
     """The model of a stored run: `run_ref` (id, UUID or prefix), else the newest complete survey of `host`."""
     if run_ref:
         run_id = store.resolve_run(run_ref)

@@ -26,7 +26,7 @@ def _threads_shown(model: HostModel, placed: Sequence[PlacedLayer], threads: Opt
     if threads is not None:
         return threads
     if placed:
-        return Counter(p.extra.get("memory_threads_measured", p.threads) for p in placed).most_common(1)[0][0]
+        return Counter(p.memory_threads_measured for p in placed).most_common(1)[0][0]
     return min(model.thread_counts())
 
 

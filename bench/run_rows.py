@@ -5,9 +5,10 @@ layers took 1.5 ms each through the ORM's unit of work."""
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from dataclasses import dataclass
-from typing import Any, Optional
+from typing import Any, Mapping, Optional
 
 from sqlalchemy import Table, delete, insert, select
 from sqlalchemy.orm import Session
@@ -19,6 +20,8 @@ from eaves.timing import coefficient_of_variation, quartiles
 
 HOSTS, RUNS = Host.__table__, Run.__table__
 MEASUREMENTS, PLACEMENTS = Measurement.__table__, Placement.__table__
+# The fields of a PlacedLayer stored as they are in a column of the same name (samples: a JSON list).
+PLACEMENT_COLUMNS = tuple(f.name for f in dataclasses.fields(PlacedLayer) if f.name not in ("samples", "extra"))
 
 
 class RunRefused(StoreError):
@@ -26,7 +29,7 @@ class RunRefused(StoreError):
 
     `reason` is the store's own words, one line, without the store's name."""
 
-    def __init__(self, message: str, reason: str, exit_code: Optional[int] = None):
+    def __init__(self, message: str, reason: str, exit_code: Optional[int] = None) -> None:
         super().__init__(message, exit_code)
         self.reason = reason
 
@@ -112,7 +115,7 @@ def delete_run(session: Session, uuid: str) -> None:
     session.execute(delete(RUNS).where(RUNS.c.id == run_id))
 
 
-def _plain(table: Table, row, skip: tuple[str, ...]) -> dict[str, Any]:
+def _plain(table: Table, row: Mapping[str, Any], skip: tuple[str, ...]) -> dict[str, Any]:
     out = {k: v for k, v in row.items() if k not in skip}
     for column in table.columns:  # SQLite hands back naive datetimes; everything we store is UTC
         value = out.get(column.key)
@@ -133,11 +136,7 @@ def _measurement_row(f: Figure) -> dict[str, Any]:
 
 
 def _placement_row(p: PlacedLayer) -> dict[str, Any]:
-    return {"layer": p.layer, "kind": p.kind, "dtype": p.dtype, "threads": p.threads, "batch": p.batch,
-            "seconds": p.seconds, "samples": list(p.samples), "flops": p.flops, "bytes": p.bytes,
-            "flops_per_byte": p.flops_per_byte, "flops_per_s": p.flops_per_s, "bytes_per_s": p.bytes_per_s,
-            "attainable_flops_per_s": p.attainable_flops_per_s, "efficiency": p.efficiency,
-            "bound": p.bound, "roof": p.roof, "extra": p.extra}
+    return {**{name: getattr(p, name) for name in PLACEMENT_COLUMNS}, "samples": list(p.samples), "extra": p.extra}
 
 
 def figure_of(m: Measurement) -> Figure:
@@ -152,8 +151,5 @@ def figure_of(m: Measurement) -> Figure:
 
 def placed_of(p: Placement) -> PlacedLayer:
     """A stored placement as the PlacedLayer it was saved from."""
-    return PlacedLayer(layer=p.layer, kind=p.kind, dtype=p.dtype, threads=p.threads, batch=p.batch,
-                       seconds=p.seconds, samples=tuple(p.samples), flops=p.flops, bytes=p.bytes,
-                       flops_per_byte=p.flops_per_byte, flops_per_s=p.flops_per_s,
-                       bytes_per_s=p.bytes_per_s, attainable_flops_per_s=p.attainable_flops_per_s,
-                       efficiency=p.efficiency, bound=p.bound, roof=p.roof, extra=dict(p.extra or {}))
+    return PlacedLayer(**{name: getattr(p, name) for name in PLACEMENT_COLUMNS}, samples=tuple(p.samples),
+                       extra=dict(p.extra or {}))

@@ -1,4 +1,5 @@
-"""Open the SQL store, write a whole run in one transaction, and answer the queries the CLI needs."""
+"""Open the SQL store, keep its schema current, and write a whole run in one transaction; its read
+queries are in eaves.store_reads."""
 
 from __future__ import annotations
 
@@ -9,20 +10,21 @@ import random
 import re
 import time
 from pathlib import Path
-from typing import Callable, Iterator, Optional, TypeVar
+from typing import Any, Callable, Iterator, Optional, TypeVar
 from urllib.parse import quote, quote_plus
 
-from sqlalchemy import create_engine, event, func, select
+from sqlalchemy import create_engine, event, insert
 from sqlalchemy.engine import URL, Connection, Engine, make_url
 from sqlalchemy.exc import (ArgumentError, DatabaseError, DataError, DBAPIError, IntegrityError,
                             OperationalError, StatementError)
-from sqlalchemy.orm import Session, selectinload
+from sqlalchemy.orm import Session
 
 from eaves import schema
 from eaves.errors import StoreError
-from eaves.models import SCHEMA_REVISION, Host, Measurement, Placement, Run, new_uuid
-from eaves.records import FIGURE_UNITS, Figure, RunRecord, RunSummary, StoredRun
-from eaves.run_rows import RunRefused, figure_of, placed_of, record_rows, write_rows
+from eaves.models import SCHEMA_REVISION, Host, Run, new_uuid
+from eaves.records import RunRecord
+from eaves.run_rows import RunRefused, record_rows, write_rows
+from eaves.store_reads import StoreReads
 
 DEFAULT_DB_PATH = Path("results") / "eaves.db"
 CONNECT_TIMEOUT_SECONDS = 10  # a server that does not answer within this is unreachable
@@ -72,7 +74,7 @@ def is_server_url(url: str) -> bool:
         return False
 
 
-def _sqlite_connect(dbapi_connection, _record) -> None:
+def _sqlite_connect(dbapi_connection: Any, _record: Any) -> None:
     # Let SQLAlchemy's "begin" event emit BEGIN itself (pysqlite's own is late and deferred).
     dbapi_connection.isolation_level = None
     cursor = dbapi_connection.cursor()
@@ -107,15 +109,15 @@ def _is_sqlite_file(path: Path) -> bool:
         probe.close()
 
 
-class Store:
-    """A connection to one store (SQLite file or server), with the schema in place.
+class Store(StoreReads):
+    """A connection to one store (SQLite file or server), with the schema in place; reads: StoreReads.
 
     `create`: make the file and the schema when missing. `check_schema`: refuse a store of another
     schema revision (False only for `eaves db`). `readonly`: SQLite only, never write the file.
     """
 
     def __init__(self, url: Optional[str] = None, create: bool = True, *, check_schema: bool = True,
-                 readonly: bool = False, connect_timeout: float = CONNECT_TIMEOUT_SECONDS):
+                 readonly: bool = False, connect_timeout: float = CONNECT_TIMEOUT_SECONDS) -> None:
         self.url = url or default_url()
         self.shown_url = mask_url(self.url)
         try:
@@ -290,8 +292,6 @@ class Store:
         (ids -1: no sequence value used up) inserted in a transaction that is then rolled back. On SQLite
         that transaction is BEGIN IMMEDIATE, so the file's write lock is taken too. StoreError says why not
         (read-only file or server, no INSERT right, locked past the busy timeout ...)."""
-        from sqlalchemy import insert
-
         if self._readonly:
             raise StoreError(f"store {self.shown_url}: opened read-only")
         probe, now = f"eaves-write-check-{new_uuid()}", dt.datetime.now(dt.timezone.utc)
@@ -320,164 +320,6 @@ class Store:
         rows = record_rows(record)
         return record.uuid, self.write(lambda session: write_rows(session, rows), "could not save run")
 
-    def has_run(self, uuid: str) -> bool:
-        with self._errors("cannot read"), Session(self.engine) as session:
-            return session.scalar(select(Run.id).where(Run.uuid == uuid)) is not None
-
-    def run_uuids(self) -> list[str]:
-        """UUIDs of every run, oldest first."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            return list(session.scalars(select(Run.uuid).order_by(Run.id)))
-
-    # -- reading ---------------------------------------------------------------------------
-    def hosts(self) -> list[tuple[str, str, int, Optional[dt.datetime]]]:
-        """(host_key, hostname, number of runs, last run start) for every host."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            rows = session.execute(
-                select(Host.host_key, Host.hostname, func.count(Run.id), func.max(Run.started_at))
-                .outerjoin(Run).group_by(Host.id).order_by(Host.hostname, Host.host_key)).all()
-        return [tuple(r) for r in rows]
-
-    def runs(self, host: Optional[str] = None, limit: Optional[int] = None,
-             status: Optional[str] = None, kind: Optional[str] = None) -> list[RunSummary]:
-        """Runs, newest first, optionally of one host (host key or hostname)."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            q = select(Run).join(Host).options(selectinload(Run.host))
-            if host:
-                q = q.where((Host.host_key == host) | (Host.hostname == host))
-            if status:
-                q = q.where(Run.status == status)
-            if kind:
-                q = q.where(Run.kind == kind)
-            q = q.order_by(Run.started_at.desc(), Run.id.desc())
-            if limit:
-                q = q.limit(limit)
-            runs = session.scalars(q).all()
-            counts = self._counts(session, [r.id for r in runs])
-            return [_summary(r, *counts.get(r.id, (0, 0))) for r in runs]
-
-    def _counts(self, session: Session, ids: list[int]) -> dict[int, tuple[int, int]]:
-        if not ids:
-            return {}
-        m = dict(session.execute(select(Measurement.run_id, func.count()).where(
-            Measurement.run_id.in_(ids)).group_by(Measurement.run_id)).all())
-        p = dict(session.execute(select(Placement.run_id, func.count()).where(
-            Placement.run_id.in_(ids)).group_by(Placement.run_id)).all())
-        return {i: (m.get(i, 0), p.get(i, 0)) for i in ids}
-
-    def resolve_run(self, ref: str) -> int:
-        """Run id from an id number, a UUID or a unique UUID prefix (at least 4 characters)."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            if ref.isdigit() and session.get(Run, int(ref)) is not None:
-                return int(ref)
-            if len(ref) >= 4:
-                ids = session.scalars(select(Run.id).where(Run.uuid.startswith(ref.lower()))).all()
-                if len(ids) == 1:
-                    return ids[0]
-                if len(ids) > 1:
-                    raise StoreError(f"run {ref!r}: ambiguous, {len(ids)} runs start with it", exit_code=2)
-        raise StoreError(f"run {ref!r}: no such run in {self.shown_url}", exit_code=2)
-
-    def latest_complete_run(self, host: Optional[str] = None, kind: str = "survey") -> Optional[int]:
-        """Id of the newest complete run of a host (host key or hostname)."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            q = select(Run.id).join(Host).where(Run.status == "complete", Run.kind == kind)
-            if host:
-                q = q.where((Host.host_key == host) | (Host.hostname == host))
-            return session.scalar(q.order_by(Run.started_at.desc(), Run.id.desc()).limit(1))
-
-    def load_run(self, run_id: int) -> StoredRun:
-        """A run with its figures and placements."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            run = session.scalar(select(Run).where(Run.id == run_id).options(
-                selectinload(Run.host), selectinload(Run.measurements), selectinload(Run.placements)))
-            if run is None:
-                raise StoreError(f"run {run_id}: no such run in {self.shown_url}", exit_code=2)
-            figures = tuple(figure_of(m) for m in run.measurements)
-            placements = tuple(placed_of(p) for p in run.placements)
-            return StoredRun(_summary(run, len(figures), len(placements)), dict(run.params),
-                             dict(run.facts), dict(run.host.facts), run.ceilings_run_uuid,
-                             figures, placements)
-
-    # -- history (diff, trend, report) -----------------------------------------------------
-    def host_fingerprint(self, host_key: str) -> Optional[str]:
-        """The hardware fingerprint of a host key (None if the host is unknown)."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            return session.scalar(select(Host.fingerprint).where(Host.host_key == host_key))
-
-    def run_history(self, host: str, kind: str = "survey", since: Optional[dt.datetime] = None,
-                    last: Optional[int] = None, until: Optional[dt.datetime] = None,
-                    ) -> list[tuple[int, str, dt.datetime, Optional[str]]]:
-        """(id, uuid, started_at, tag) of a host's complete runs of one kind, oldest first, started in
-        [since, until]; `last`: only the newest that many. No figures and no counts: cheap on a long history."""
-        with self._errors("cannot read"), Session(self.engine) as session:
-            q = select(Run.id, Run.uuid, Run.started_at, Run.tag).join(Host).where(
-                Run.status == "complete", Run.kind == kind, (Host.host_key == host) | (Host.hostname == host))
-            if since is not None:
-                q = q.where(Run.started_at >= since)
-            if until is not None:
-                q = q.where(Run.started_at <= until)
-            q = q.order_by(Run.started_at.desc(), Run.id.desc())
-            if last:
-                q = q.limit(last)
-            rows = session.execute(q).all()
-        return [(r[0], r[1], _aware(r[2]), r[3]) for r in reversed(rows)]
-
-    def figures_of(self, run_ids: list[int], suites: Optional[tuple[str, ...]] = None) -> dict[int, list[Figure]]:
-        """Figures of many runs at once, by run id, optionally of some suites only (without `extra`)."""
-        cols = (Measurement.run_id, Measurement.suite, Measurement.kernel, Measurement.variant,
-                Measurement.dtype, Measurement.threads, Measurement.working_set_bytes, Measurement.cache_level,
-                Measurement.stride_elems, Measurement.shape, Measurement.samples, Measurement.repetitions,
-                Measurement.min_seconds, *(getattr(Measurement, u) for u in FIGURE_UNITS))
-        out: dict[int, list[Figure]] = {i: [] for i in run_ids}
-        with self._errors("cannot read"), Session(self.engine) as session:
-            for start in range(0, len(run_ids), 500):
-                q = select(*cols).where(Measurement.run_id.in_(run_ids[start:start + 500]))
-                if suites:
-                    q = q.where(Measurement.suite.in_(suites))
-                for r in session.execute(q.order_by(Measurement.id)):
-                    unit = next(u for u, v in zip(FIGURE_UNITS, r[13:]) if v is not None)
-                    out[r[0]].append(Figure(suite=r[1], kernel=r[2], variant=r[3], dtype=r[4], threads=r[5],
-                                            working_set_bytes=r[6], cache_level=r[7], stride_elems=r[8],
-                                            shape=r[9], unit=unit, samples=tuple(r[10]), repetitions=r[11],
-                                            min_seconds=r[12]))
-        return out
-
-    def figure_summaries(self, run_ids: list[int], suites: tuple[str, ...]) -> list[tuple]:
-        """(id, run_id, suite, kernel, variant, dtype, threads, cache_level, stride_elems, shape, unit,
-        median, q1, q3) of many runs' figures: no samples to decode, for long histories."""
-        m = Measurement
-        cols = (m.id, m.run_id, m.suite, m.kernel, m.variant, m.dtype, m.threads, m.cache_level, m.stride_elems,
-                m.shape, *(getattr(m, u) for u in FIGURE_UNITS), m.q1, m.q3)
-        out = []
-        with self._errors("cannot read"), self.engine.connect() as conn:
-            for start in range(0, len(run_ids), 500):
-                q = select(*cols).where(m.run_id.in_(run_ids[start:start + 500]), m.suite.in_(suites))
-                for r in conn.execute(q):
-                    unit, value = next((u, v) for u, v in zip(FIGURE_UNITS, r[10:14]) if v is not None)
-                    out.append((*r[:10], unit, value, r[14], r[15]))
-        return out
-
-    def placement_seconds(self, run_ids: list[int]) -> list[tuple[int, str, float]]:
-        """(run_id, layer, seconds) of every placed layer of some runs: the layer histories the gate learns from."""
-        out = []
-        with self._errors("cannot read"), self.engine.connect() as conn:
-            for start in range(0, len(run_ids), 500):
-                q = select(Placement.run_id, Placement.layer, Placement.seconds).where(
-                    Placement.run_id.in_(run_ids[start:start + 500]))
-                out += [tuple(r) for r in conn.execute(q)]
-        return out
-
-    def samples_of(self, measurement_ids: list[int]) -> dict[int, tuple[float, ...]]:
-        """The samples of some figures, by measurement id."""
-        out: dict[int, tuple[float, ...]] = {}
-        with self._errors("cannot read"), self.engine.connect() as conn:
-            for start in range(0, len(measurement_ids), 500):
-                q = select(Measurement.id, Measurement.samples).where(
-                    Measurement.id.in_(measurement_ids[start:start + 500]))
-                out.update((i, tuple(s)) for i, s in conn.execute(q))
-        return out
-
 
 def _retryable(err: Exception) -> bool:
     """A write that lost a race and may succeed when repeated."""
@@ -500,19 +342,3 @@ def _short(err: Exception) -> str:
     """First line of a driver error, without SQL or parameters, and with no password in it."""
     orig = getattr(err, "orig", None) or err
     return str(orig).strip().splitlines()[0] if str(orig).strip() else type(orig).__name__
-
-
-def _summary(run: Run, n_figures: int, n_placements: int) -> RunSummary:
-    return RunSummary(id=run.id, uuid=run.uuid, host_key=run.host.host_key,
-                      hostname=run.host.hostname, kind=run.kind, status=run.status,
-                      started_at=_aware(run.started_at), ended_at=_aware(run.ended_at),
-                      tag=run.tag, note=run.note, git_describe=run.git_describe,
-                      eaves_version=run.eaves_version, n_figures=n_figures,
-                      n_placements=n_placements)
-
-
-def _aware(value: Optional[dt.datetime]) -> Optional[dt.datetime]:
-    """SQLite hands back naive datetimes; everything we store is UTC."""
-    if value is not None and value.tzinfo is None:
-        return value.replace(tzinfo=dt.timezone.utc)
-    return value

@@ -1,5 +1,5 @@
-"""Tables for the terminal (rich renderables); built from ceiling rows, printed only by commands.
-Every string a store supplied goes in through eaves.plain.plain (shown as written, never as markup)."""
+"""Tables for the terminal (rich renderables); built from ceiling rows and placements, printed only by
+commands. Every string a store supplied goes in through eaves.plain.plain (shown as written, never as markup)."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ from rich.table import Table
 
 from eaves.ceilings import KERNELS, LatencyCeiling, MemoryCeiling, StrideRow, level_key
 from eaves.plain import plain
-from eaves.records import RunSummary
-from eaves.units import format_bytes, format_rate
+from eaves.records import PlacedLayer, RunSummary
+from eaves.units import format_bytes, format_duration, format_rate
 
 VARIANT_MARKS = {"streaming store": "ˢ", "libc memcpy": "ᵐ", "compiled loop": "ᶜ"}
 
@@ -39,7 +39,7 @@ def memory_table(ceilings: Sequence[MemoryCeiling], latency: Sequence[LatencyCei
                 c = by.get((level, k, t))
                 cells.append("-" if c is None else format_rate(c.bytes_per_s, "B/s") + VARIANT_MARKS.get(c.variant, ""))
             size = _size_cell(level, plateaus.get(str(t)) or plateaus.get(t) or [])
-            latency = f"{lat[level]:.1f} ns" if (i == 0 and level in lat) else ""
+            latency = format_duration(lat[level] * 1e-9) if (i == 0 and level in lat) else ""
             shown = level + (" (possibly cache-assisted)" if any(c.caution for c in ceilings if c.level == level) else "")
             table.add_row(plain(shown) if i == 0 else "", size, str(t), *cells, latency,
                           end_section=i == len(threads) - 1)
@@ -97,6 +97,24 @@ def runs_table(runs: Sequence[RunSummary], title: Optional[str] = None) -> Table
         table.add_row(str(r.id), plain(r.uuid[:8]), plain(r.host_key), plain(r.kind), plain(r.status),
                       r.started_at.strftime("%Y-%m-%d %H:%M:%S"), secs, plain(r.tag or ""), str(r.n_figures),
                       str(r.n_placements), plain(r.git_describe or ""))
+    return table
+
+
+def placements_table(placed: Sequence[PlacedLayer], title: str) -> Table:
+    """One row per placed layer, in the order given: time, counts, rates, efficiencies, roof and headroom."""
+    table = Table(title=title, title_justify="left", header_style="bold")
+    table.add_column("layer", no_wrap=True, min_width=min(48, max((len(p.layer) for p in placed), default=5)))
+    for col in ("kind", "dtype", "thr", "time", "MACs", "FLOP/B", "achieved", "attainable",
+                "eff", "mem eff", "bound", "roof", "level", "headroom"):
+        table.add_column(col, justify="left" if col in ("kind", "dtype", "bound", "roof", "level") else "right")
+    for p in placed:
+        thr = str(p.threads) + ("" if p.threads_match == "exact" else f"→{p.threads_measured}")
+        bound = "[bold red]impossible[/]" if p.bound == "impossible" else plain(p.bound)
+        table.add_row(plain(p.layer), plain(p.kind), plain(p.dtype), thr, format_duration(p.seconds),
+                      "-" if p.macs is None else format_rate(p.macs, ""), f"{p.flops_per_byte:.3g}",
+                      format_rate(p.flops_per_s, "FLOP/s"), format_rate(p.attainable_flops_per_s, "FLOP/s"),
+                      f"{p.efficiency:.0%}", f"{p.memory_efficiency:.0%}", bound, plain(p.roof),
+                      plain(p.consistent_level or "none"), f"{p.headroom:.2f}x")
     return table
 
 

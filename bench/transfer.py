@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import datetime as dt
 import os
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import NamedTuple, Optional
@@ -13,7 +15,7 @@ from sqlalchemy import delete, select
 from sqlalchemy.orm import Session
 
 from eaves.errors import InputError, StoreError
-from eaves.models import Host, Quarantined, Run
+from eaves.models import SCHEMA_REVISION, Host, Quarantined, Run
 from eaves.records import RunRecord
 from eaves.run_rows import RunRefused, delete_run, read_rows, write_rows
 from eaves.schema import known_revisions, require_current
@@ -150,9 +152,32 @@ def merge(path: Path, url: Optional[str] = None) -> Transfer:
         revision = source.schema_revision()
         if revision not in known_revisions():
             require_current(revision, source.shown_url)  # empty or newer: says so
-        return copy_runs(source, Store(url or default_url()))
+        if revision == SCHEMA_REVISION:
+            return copy_runs(source, Store(url or default_url()))
     finally:
         source.close()
+    with tempfile.TemporaryDirectory(prefix="eaves-merge-") as folder:  # an older schema: merge a migrated copy
+        copy = _migrated_copy(path, Path(folder) / path.name)
+        try:
+            return copy_runs(copy, Store(url or default_url()))
+        finally:
+            copy.close()
+
+
+def _migrated_copy(path: Path, to: Path) -> Store:
+    """A copy of an older store file, migrated to this eaves's schema; the file itself is only read.
+    Copied through SQLite's backup API, which sees what a write-ahead log still holds."""
+    import sqlite3
+
+    try:
+        with contextlib.closing(sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)) as src, \
+                contextlib.closing(sqlite3.connect(to)) as dst:
+            src.backup(dst)
+    except sqlite3.Error as err:
+        raise StoreError(f"store {path}: cannot copy it to migrate: {err}") from None
+    copy = Store(f"sqlite:///{to}", create=False, check_schema=False)
+    copy.upgrade_schema()
+    return copy
 
 
 def open_spool(path: Path, create: bool = True) -> Store:

@@ -12,13 +12,16 @@ from __future__ import annotations
 import datetime as dt
 import statistics
 from dataclasses import dataclass
-from typing import Optional, Sequence
+from typing import TYPE_CHECKING, Optional, Sequence
 
-from eaves.compare import DEFAULT_ALPHA, DEFAULT_THRESHOLD, NOISE, SLOWER, Comparison, compare
+from eaves.compare import DEFAULT_ALPHA, DEFAULT_THRESHOLD, HELD, LOST, Comparison, compare
 from eaves.errors import InputError
-from eaves.metrics import CEILING_SUITES, FigureSummary, MetricKey, ceiling_figures, lower_is_better, matches
+from eaves.metrics import CEILING_SUITES, MetricKey, ceiling_figures, lower_is_better, matches
 from eaves.noise import DEFAULT_NOISE_RUNS, RunNoise, default_noise, host_noise, noise_of
-from eaves.records import Figure
+from eaves.records import Figure, FigureSummary, RunRef
+
+if TYPE_CHECKING:
+    from eaves.store import Store
 
 DEFAULT_WINDOW = 5
 # Fewer earlier runs than this cannot tell run-to-run variation from drift: moves are reported,
@@ -26,16 +29,6 @@ DEFAULT_WINDOW = 5
 # host differed by 11-18 %, measured while writing this).
 MIN_BASELINE_RUNS = 3
 DEFAULT_LAST = 100  # runs shown when no --since is given: a long history stays quick to answer
-
-
-@dataclass(frozen=True)
-class RunRef:
-    """A run in a history: enough to label a point."""
-
-    id: int
-    uuid: str
-    started_at: dt.datetime
-    tag: Optional[str]
 
 
 @dataclass(frozen=True)
@@ -52,7 +45,8 @@ class TrendPoint:
 
     @property
     def drifted(self) -> bool:
-        return self.comparison is not None and self.comparison.verdict != NOISE
+        """Whether the run moved from its baseline beyond noise (either way)."""
+        return self.comparison is not None and self.comparison.verdict != HELD
 
 
 @dataclass(frozen=True)
@@ -65,6 +59,7 @@ class MetricTrend:
 
     @property
     def latest(self) -> TrendPoint:
+        """The newest run's point."""
         return self.points[-1]
 
 
@@ -90,21 +85,23 @@ class BaselineCheck:
 
     @property
     def regressions(self) -> tuple[tuple[MetricKey, str, Comparison], ...]:
-        return tuple(c for c in self.changes if c[2].verdict == SLOWER)
+        """The ceilings that got worse beyond noise."""
+        return tuple(c for c in self.changes if c[2].verdict == LOST)
 
     @property
     def moved(self) -> tuple[tuple[MetricKey, str, Comparison], ...]:
-        return tuple(c for c in self.changes if c[2].verdict != NOISE)
+        """The ceilings that moved beyond noise, either way."""
+        return tuple(c for c in self.changes if c[2].verdict != HELD)
 
 
 def _judge(baseline_medians: Sequence[float], median: float, unit: str, threshold: float,
            noise: Optional[RunNoise] = None) -> Optional[Comparison]:
     """The verdict when the threshold or the run-to-run floor alone settles it (the rank test cannot
-    overturn "within noise"), else None: the samples must be tested."""
+    overturn "held"), else None: the samples must be tested."""
     baseline = statistics.median(baseline_medians)
     if abs(median - baseline) < max(threshold, noise.floor if noise else 0.0) * abs(baseline):
         return Comparison(baseline, median, (median - baseline) / baseline if baseline else 0.0, None, "threshold",
-                          NOISE, lower_is_better(unit), len(baseline_medians), 0, noise)
+                          HELD, lower_is_better(unit), len(baseline_medians), 0, noise)
     return None
 
 
@@ -123,7 +120,7 @@ def against_baseline(history: Sequence[Figure], current: Figure, threshold: floa
                    reference=statistics.median(medians), noise=noise)
 
 
-def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Optional[dt.datetime] = None,
+def trend(store: Store, host: str, patterns: Optional[Sequence[str]] = None, since: Optional[dt.datetime] = None,
           window: int = DEFAULT_WINDOW, threshold: float = DEFAULT_THRESHOLD, last: Optional[int] = DEFAULT_LAST,
           alpha: float = DEFAULT_ALPHA, noise_runs: int = DEFAULT_NOISE_RUNS) -> Trend:
     """The history of each ceiling of `host` (host key or hostname), each run against its baseline,
@@ -138,14 +135,14 @@ def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Opt
     before = max(window, noise_runs)  # earlier runs needed by the first run shown
     every = store.run_history(host, "survey", last=None if since or not last else last + before)
     if since is not None:
-        cut = next((i for i, r in enumerate(every) if r[2] >= since), len(every))
+        cut = next((i for i, r in enumerate(every) if r.started_at >= since), len(every))
     else:
         cut = max(0, len(every) - last) if last else 0
     earlier, shown = every[max(0, cut - before):cut], every[cut:]
-    runs = [RunRef(*r) for r in earlier + shown]
+    runs = earlier + shown
     by_run: dict[int, list[FigureSummary]] = {r.id: [] for r in runs}
-    for row in store.figure_summaries([r.id for r in runs], CEILING_SUITES):
-        by_run[row[1]].append(FigureSummary(*row))
+    for summary in store.figure_summaries([r.id for r in runs], CEILING_SUITES):
+        by_run[summary.run_id].append(summary)
     per_run = {r.id: ceiling_figures(by_run[r.id]) for r in runs}
     keys: dict[MetricKey, str] = {}
     for r in runs:
@@ -183,17 +180,17 @@ def trend(store, host: str, patterns: Optional[Sequence[str]] = None, since: Opt
                               reference=statistics.median(h.median for h in history), noise=noise)
             points.append(TrendPoint(r, f.median, f.q1, f.q3, cmp.before if cmp else None, cmp, len(history)))
         metrics.append(MetricTrend(k, keys[k], tuple(points)))
-    return Trend(host, tuple(RunRef(*r) for r in shown), tuple(metrics), window, threshold, noise_runs)
+    return Trend(host, tuple(shown), tuple(metrics), window, threshold, noise_runs)
 
 
-def check_run(store, run_uuid: str, window: int = DEFAULT_WINDOW, threshold: float = DEFAULT_THRESHOLD,
+def check_run(store: Store, run_uuid: str, window: int = DEFAULT_WINDOW, threshold: float = DEFAULT_THRESHOLD,
               alpha: float = DEFAULT_ALPHA, noise_runs: int = DEFAULT_NOISE_RUNS) -> BaselineCheck:
     """A stored survey run against the baseline of the `window` complete runs of its host before it,
     and against each ceiling's run-to-run noise over the `noise_runs` runs before it."""
     run = store.load_run(store.resolve_run(run_uuid))
     s = run.summary
-    history = [r for r in store.run_history(s.host_key, "survey") if r[0] != s.id and r[2] <= s.started_at]
-    earlier = [RunRef(*r) for r in history[-window:]]
+    history = [r for r in store.run_history(s.host_key, "survey") if r.id != s.id and r.started_at <= s.started_at]
+    earlier = history[-window:]
     figures = store.figures_of([r.id for r in earlier], CEILING_SUITES)
     past = [ceiling_figures(figures.get(r.id, ())) for r in earlier]
     noise = host_noise(store, s.host_key, "survey", noise_runs, s.started_at, exclude=(s.id,))

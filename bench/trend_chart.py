@@ -5,11 +5,11 @@ from __future__ import annotations
 import io
 import re
 from pathlib import Path
-from typing import Sequence
+from typing import Any, Sequence
 
 from eaves.charts import INK, PAPER, _pyplot, _style
 from eaves.plain import visible
-from eaves.compare import SLOWER
+from eaves.compare import GAINED, LOST
 from eaves.errors import InputError
 from eaves.trend import MetricTrend, Trend
 
@@ -31,9 +31,9 @@ def _draw(ax, m: MetricTrend, legend: bool = True) -> None:
     if base:
         bx, by = zip(*base)
         ax.plot(bx, by, color=BASELINE, lw=1.0, ls=(0, (4, 2)), label="baseline (median of earlier runs)")
-    for colour, worse, name in ((WORSE, True, "drift, worse"), (BETTER, False, "drift, better")):
+    for colour, worse, name in ((WORSE, True, f"drift, {LOST}"), (BETTER, False, f"drift, {GAINED}")):
         pts = [(p.run.started_at, p.median / scale) for p in m.points
-               if p.drifted and (p.comparison.verdict == SLOWER) == worse]
+               if p.drifted and (p.comparison.verdict == LOST) == worse]
         if pts:
             ax.scatter(*zip(*pts), s=46, facecolors="none", edgecolors=colour, linewidths=1.6, zorder=5, label=name)
     ax.set_ylabel(label)
@@ -41,7 +41,7 @@ def _draw(ax, m: MetricTrend, legend: bool = True) -> None:
         ax.legend(loc="best", fontsize=7, frameon=False)
 
 
-def _figure(m: MetricTrend, host: str):
+def _figure(m: MetricTrend, host: str) -> tuple[Any, Any]:
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(7.5, 3.0), facecolor=PAPER)
     _draw(ax, m)
@@ -70,15 +70,6 @@ def trend_grid_svg(metrics: Sequence[MetricTrend], host: str, columns: int = 3) 
     fig.suptitle(f"{visible(host)}: ceilings over time (dashed: baseline; circled: drift)", x=0.01, ha="left",
                  fontsize=9, color=INK)
     fig.subplots_adjust(left=0.06, right=0.98, top=1 - 0.45 / rows, bottom=0.25 / rows, wspace=0.28, hspace=0.55)
-    buf = io.StringIO()
-    fig.savefig(buf, format="svg", facecolor=PAPER, metadata={"Date": None})
-    plt.close(fig)
-    return buf.getvalue()
-
-
-def trend_svg(m: MetricTrend, host: str) -> str:
-    """The chart of one ceiling as SVG text (for pages that embed it)."""
-    plt, fig = _figure(m, host)
     buf = io.StringIO()
     fig.savefig(buf, format="svg", facecolor=PAPER, metadata={"Date": None})
     plt.close(fig)

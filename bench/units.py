@@ -63,10 +63,38 @@ def format_bytes(n: float | None) -> str:
 
 
 def format_rate(value: float | None, unit: str) -> str:
-    """3.2e10, 'B/s' -> '32.0 GB/s' (decimal prefixes, as rates are quoted)."""
-    if value is None or (isinstance(value, float) and math.isnan(value)):
+    """3.2e10, 'B/s' -> '32 GB/s' (decimal prefixes, as rates are quoted); None, NaN, inf -> '-'."""
+    if value is None or not math.isfinite(value):
         return "-"
     for prefix, scale in (("T", 1e12), ("G", 1e9), ("M", 1e6), ("k", 1e3)):
         if abs(value) >= scale:
             return f"{value / scale:.3g} {prefix}{unit}"
     return f"{value:.3g} {unit}"
+
+
+def format_duration(seconds: float | None) -> str:
+    """0.0123 -> '12.3 ms': the largest of s, ms, µs, ns that keeps the number at 1 or more; None, NaN -> '-'."""
+    if seconds is None or not math.isfinite(seconds):
+        return "-"
+    for unit, scale in (("s", 1.0), ("ms", 1e-3), ("µs", 1e-6)):
+        if abs(seconds) >= scale:
+            return f"{seconds / scale:.3g} {unit}"
+    return f"{seconds / 1e-9:.3g} ns"
+
+
+# How each stored unit of a figure (eaves.records.Figure.unit) is shown, and the rate's unit symbol.
+RATE_SYMBOLS = {"bytes_per_s": "B/s", "ops_per_s": "OP/s", "hz": "Hz"}
+
+
+def format_figure(value: float | None, unit: str) -> str:
+    """A figure in its stored unit: durations and latencies through format_duration, efficiency in
+    percent, every rate through format_rate."""
+    if value is None or not math.isfinite(value):
+        return "-"
+    if unit == "ns_per_load":
+        return format_duration(value * 1e-9)
+    if unit == "seconds":
+        return format_duration(value)
+    if unit == "efficiency":
+        return f"{value:.1%}"
+    return format_rate(value, RATE_SYMBOLS.get(unit, unit))

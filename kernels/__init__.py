@@ -27,7 +27,7 @@ def thread_slices(n: int, nthreads: int) -> list[tuple[int, int]]:
     return out
 
 
-class Bound:
+class BoundKernel:
     """A kernel bound to its buffers: `call(reps)` runs it, `expected(reps)` is its checksum."""
 
     def __init__(self, call: Callable[[int], float], expected: Callable[[int], float],
@@ -57,7 +57,7 @@ class MemoryKernel:
     read_bytes: int  # bytes read per element index (all arrays)
     write_bytes: int  # bytes written per element index
     in_sweep: bool  # measured at every working-set size, or only at the level ceilings
-    bind: Callable[[np.ndarray, np.ndarray, int, int], Bound]  # (a, b, elems, threads)
+    bind: Callable[[np.ndarray, np.ndarray, int, int], BoundKernel]  # (a, b, elems, threads)
     description: str
 
     @property
@@ -72,7 +72,7 @@ def _bind_read(kernel):
     def bind(a, b, n, threads):
         x = a[:n]
         mem.first_touch(x, threads, 1.0)
-        return Bound(lambda r: kernel(x, r, threads), lambda r: float(r * n))
+        return BoundKernel(lambda r: kernel(x, r, threads), lambda r: float(r * n))
     return bind
 
 
@@ -89,7 +89,7 @@ def _bind_fill(kernel):
         def expected(r):
             return float(sum(2 * (1.0 + r - 1) for _ in slices))
 
-        return Bound(call, expected, lambda: mem.count_not(x, 1.0 + last[0] - 1, threads) == 0)
+        return BoundKernel(call, expected, lambda: mem.count_not(x, 1.0 + last[0] - 1, threads) == 0)
     return bind
 
 
@@ -99,7 +99,7 @@ def _bind_copy(kernel):
         mem.fill_pattern(src, threads, PATTERN)
         mem.first_touch(dst, threads, -1.0)
         want = float(sum(src[lo] + src[hi - 1] for lo, hi in thread_slices(n, threads)))
-        return Bound(lambda r: kernel(dst, src, r, threads), lambda r: want,
+        return BoundKernel(lambda r: kernel(dst, src, r, threads), lambda r: want,
                      lambda: mem.mismatches(dst, src, threads) == 0)
     return bind
 
@@ -116,7 +116,7 @@ def _bind_axpy(kernel):
             done[0] += r
             return float(firsts * done[0])  # y == repetitions so far, read at each slice start
 
-        return Bound(lambda r: kernel(y, x, 1.0, r, threads), expected,
+        return BoundKernel(lambda r: kernel(y, x, 1.0, r, threads), expected,
                      lambda: mem.count_not(y, float(done[0]), threads) == 0)
     return bind
 

@@ -673,7 +673,6 @@ REGISTRY: list[PeakKernel] = [
     PeakKernel("int8-amx-4x", "int8", _spec("amx_i8", "i32", 8 * TILE_COLSB, 4, "llvm.x86.tdpbusd"),
                ("amx_tile", "amx_int8"), _X86, "AMX int8 tiles (tdpbusd), u8 x s8 -> s32", True, 8),
 ]
-DTYPES = ("fp64", "fp32", "fp16", "bf16", "int8", "int16")
 
 
 def kernels_for(features, arch: str, dtype: str | None = None) -> list[PeakKernel]:

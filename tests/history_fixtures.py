@@ -10,6 +10,7 @@ import numpy as np
 from layer_fixtures import CACHES, HOST_KEY, HOSTNAME, synthetic_figures
 
 from eaves.records import Figure, PlacedLayer, RunRecord
+from eaves.store import Store
 
 T0 = dt.datetime(2026, 2, 1, 2, 0, tzinfo=dt.timezone.utc)
 FINGERPRINT = "0badc0de0badc0de"
@@ -64,7 +65,7 @@ def layers_record(placed: list[PlacedLayer], day: int, ceilings_uuid: Optional[s
                      placements=placed)
 
 
-def fill_history(store, days: int, seed: int = 7, cv: float = 0.01, n: int = 5,
+def fill_history(store: Store, days: int, seed: int = 7, cv: float = 0.01, n: int = 5,
                  drift_from: Optional[int] = None, drift: Optional[dict[str, float]] = None) -> list[str]:
     """`days` nightly surveys of the invented host; from day `drift_from` on, `drift` scales figures."""
     rng = np.random.default_rng(seed)
@@ -82,7 +83,7 @@ def wobbly(figures: list[Figure], rng: np.random.Generator, wobble: float) -> li
             for f, u in zip(figures, rng.uniform(1 - wobble, 1 + wobble, len(figures)))]
 
 
-def fill_wobbly_history(store, days: int, seed: int = 17, wobble: float = 0.05, cv: float = 0.01) -> list[str]:
+def fill_wobbly_history(store: Store, days: int, seed: int = 17, wobble: float = 0.05, cv: float = 0.01) -> list[str]:
     """`days` surveys whose medians wobble run to run (each figure by up to +-`wobble`, so consecutive
     runs differ by up to about twice that) while the samples inside a run stay within `cv`."""
     rng = np.random.default_rng(seed)

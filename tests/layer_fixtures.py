@@ -6,6 +6,8 @@ The numbers are invented test data (round values that make hand checks easy), no
 from __future__ import annotations
 
 import datetime as dt
+from pathlib import Path
+from typing import Any
 
 from eaves.records import Figure, RunRecord
 from eaves.store import Store
@@ -28,7 +30,7 @@ CACHES = [dict(level=1, kind="data", size_bytes=32 * KIB, line_bytes=64, shared_
           dict(level=3, kind="unified", size_bytes=16 * MIB, line_bytes=64, shared_cpus=2, instances=1)]
 
 
-def _fig(suite, kernel, dtype, threads, unit, value, **kw) -> Figure:
+def _fig(suite: str, kernel: str, dtype: str, threads: int, unit: str, value: float, **kw: Any) -> Figure:
     # three samples around the value: the median is the value itself
     return Figure(suite=suite, kernel=kernel, dtype=dtype, threads=threads, unit=unit,
                   samples=(value * 0.98, value, value * 1.01), repetitions=10, min_seconds=0.01, **kw)
@@ -65,5 +67,6 @@ def save_survey(store: Store, figures: list[Figure], host_key: str = HOST_KEY, h
     return store.save_run(record)
 
 
-def temp_store(tmp_path) -> Store:
+def temp_store(tmp_path: Path) -> Store:
+    """A fresh SQLite store in a test's folder."""
     return Store("sqlite:///" + str(tmp_path / "t.db"))

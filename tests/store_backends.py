@@ -2,7 +2,8 @@
 
 Each PostgreSQL test gets its own fresh schema (via search_path), dropped afterwards. Without
 EAVES_TEST_PG_URL the PostgreSQL cases skip, except under CI (CI set), where they fail:
-.ci/run starts a server and sets the variable, so a skip there would hide a broken setup."""
+.ci/run starts a server and sets the variable, so a skip there would hide a broken setup.
+The fixtures built on these (store_url, once per backend) are in conftest.py."""
 
 from __future__ import annotations
 
@@ -57,25 +58,3 @@ def backend_url(backend: str, folder: Path, name: str = "store.db") -> Iterator[
     else:
         with pg_schema_url() as url:
             yield url
-
-
-@pytest.fixture(params=BACKENDS)
-def store_url(request, tmp_path) -> Iterator[str]:
-    """An empty store, once per backend."""
-    with backend_url(request.param, tmp_path) as url:
-        yield url
-
-
-@pytest.fixture
-def run_cli(monkeypatch, capsys):
-    """`eaves ...` in-process, limited to the store commands so that other modules cannot break it."""
-    from eaves import cli
-
-    monkeypatch.setattr(cli, "COMMANDS", ("db", "push", "merge"))
-
-    def run(*argv: str) -> tuple[int, str, str]:
-        code = cli.main(list(argv))
-        out, err = capsys.readouterr()
-        return code, out, err
-
-    return run

@@ -14,15 +14,7 @@ from eaves.errors import EXIT_INPUT, InputError
 from eaves.levels import detect_plateaus
 from eaves.store import Store
 from eaves.units import parse_name_list, parse_size
-from store_backends import store_url  # noqa: F401  (fixture)
 from survey_fakes import ARGS, fake_survey
-
-
-@pytest.fixture()
-def place(tmp_path, monkeypatch):
-    monkeypatch.chdir(tmp_path)
-    monkeypatch.setenv("EAVES_SPOOL", str(tmp_path / "spool.db"))
-    return tmp_path
 
 
 def _one_line_error(capsys, *needles: str) -> str:

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from eaves.compare import FASTER, NOISE, SLOWER, _u_counts, compare, mann_whitney, smallest_p
+from eaves.compare import GAINED, HELD, LOST, _u_counts, compare, mann_whitney, smallest_p
 from eaves.errors import InputError
 
 
@@ -55,36 +55,36 @@ TRIALS = 100
 @pytest.mark.parametrize("n, cv", [(5, 0.03), (9, 0.04)])
 def test_false_alarm_rate_same_distribution(n, cv):
     rng = np.random.default_rng(1947)
-    quiet = sum(compare(rng.normal(1.0, cv, n), rng.normal(1.0, cv, n)).verdict == NOISE for _ in range(TRIALS))
+    quiet = sum(compare(rng.normal(1.0, cv, n), rng.normal(1.0, cv, n)).verdict == HELD for _ in range(TRIALS))
     assert quiet >= 95, f"{TRIALS - quiet} false alarms in {TRIALS}"
 
 
 @pytest.mark.parametrize("n, cv", [(5, 0.03), (9, 0.04)])
 def test_power_against_a_ten_percent_shift(n, cv):
     rng = np.random.default_rng(2024)
-    caught = sum(compare(rng.normal(1.0, cv, n), rng.normal(0.9, cv, n)).verdict == SLOWER for _ in range(TRIALS))
+    caught = sum(compare(rng.normal(1.0, cv, n), rng.normal(0.9, cv, n)).verdict == LOST for _ in range(TRIALS))
     assert caught >= 95, f"only {caught} of {TRIALS} shifts detected"
 
 
 def test_direction_follows_the_unit():
     before, after = [80.0, 81, 79.5, 80.2, 80.6], [90.0, 91, 89.5, 90.4, 90.8]
-    assert compare(before, after).verdict == FASTER  # a rate went up
+    assert compare(before, after).verdict == GAINED  # a rate went up
     c = compare(before, after, lower_is_better=True)  # a latency went up
-    assert c.verdict == SLOWER and c.change == pytest.approx(90.4 / 80.2 - 1)
+    assert c.verdict == LOST and c.change == pytest.approx(90.4 / 80.2 - 1)
 
 
 def test_threshold_keeps_tiny_but_certain_changes_quiet():
     before = [100.0 + i * 0.01 for i in range(9)]
     after = [101.0 + i * 0.01 for i in range(9)]  # 1 % apart, complete separation
     assert mann_whitney(before, after).p_value < 0.001
-    assert compare(before, after, threshold=0.03).verdict == NOISE
-    assert compare(before, after, threshold=0.005).verdict == FASTER
+    assert compare(before, after, threshold=0.03).verdict == HELD
+    assert compare(before, after, threshold=0.005).verdict == GAINED
 
 
 def test_too_few_samples_fall_back_to_ranges():
     c = compare([100.0], [80.0])
-    assert c.method == "ranges" and c.p_value is None and c.verdict == SLOWER
-    assert compare([100.0, 70.0], [80.0, 85.0]).verdict == NOISE  # overlapping ranges
+    assert c.method == "ranges" and c.p_value is None and c.verdict == LOST
+    assert compare([100.0, 70.0], [80.0, 85.0]).verdict == HELD  # overlapping ranges
 
 
 def test_bad_input_is_an_input_error():

@@ -13,8 +13,8 @@ from eaves.compute import (GEMM_PATHS, ComputeCeiling, GemmCase, check_dtypes, c
 from eaves.errors import EXIT_INPUT, BrokenKernelError, InputError
 from eaves.host import collect_host_facts
 from eaves.kernels import compute as K
-from eaves.peak import (MAX_TILE_MACS_PER_CYCLE, Bound, check_below, infer_madd_units, infer_tile_macs_per_cycle,
-                        lanes_of, theoretical_ops_per_s)
+from eaves.peak import (MAX_TILE_MACS_PER_CYCLE, TheoreticalBound, check_below, infer_madd_units,
+                        infer_tile_macs_per_cycle, lanes_of, theoretical_ops_per_s)
 from eaves.records import Figure
 from eaves.threads import usable_cpus, use_threads
 from eaves.timing import TimingPolicy
@@ -59,7 +59,7 @@ def test_units_are_inferred_and_capped():
 
 
 def test_rate_above_bound_is_a_broken_kernel():
-    bound = Bound(100.0, 1, 1.0, 25, 2)
+    bound = TheoreticalBound(100.0, 1, 1.0, 25, 2)
     check_below("fine", 104.0, bound)
     with pytest.raises(BrokenKernelError, match="fp32-fma-512") as err:
         check_below("fp32-fma-512", 106.0, bound)
@@ -189,7 +189,8 @@ def test_tile_bound_is_inferred_and_capped():
     assert infer_tile_macs_per_cycle(2 * 900 * clock, clock, "int8", "k") == MAX_TILE_MACS_PER_CYCLE["int8"]
     with pytest.raises(BrokenKernelError, match="kernel k"):
         infer_tile_macs_per_cycle(2 * 600 * clock, clock, "bf16", "k")
-    bound = Bound(theoretical_ops_per_s(1, clock, 512, 1), 1, clock, 512, 1, lanes_label="MACs per cycle (tile unit)")
+    bound = TheoreticalBound(theoretical_ops_per_s(1, clock, 512, 1), 1, clock, 512, 1,
+                             lanes_label="MACs per cycle (tile unit)")
     assert bound.ops_per_s == pytest.approx(3.072e12)  # 1 core x 3 GHz x 512 MACs x 2 ops, by hand
     with pytest.raises(BrokenKernelError, match="512 MACs per cycle"):
         check_below("bf16-amx-4x", 3.3e12, bound)

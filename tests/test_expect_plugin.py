@@ -72,7 +72,7 @@ def test_plain_functions_for_other_runners(tmp_path):
     out = np.empty(4096)
     check = check_roof(lambda: np.add(a, b, out=out), 1e-4, db=url, flops=a.size, bytes=3 * a.nbytes,
                        dtype="fp64", policy=QUICK, name="add4k")
-    assert check.passed and check.placed.layer == "add4k" and check.placed.extra["memory_roof"] == "L2"
+    assert check.passed and check.placed.layer == "add4k" and check.placed.memory_roof == "L2"
     # efficiency is achieved over attainable, from the median of the timed samples
     p = check.placed
     assert p.efficiency == pytest.approx(a.size / p.seconds / p.attainable_flops_per_s)

@@ -23,7 +23,6 @@ from eaves.plain import visible
 from eaves.records import RunRecord
 from eaves.store import Store
 from run_records import figures, placement
-from store_backends import store_url  # noqa: F401  (fixture)
 
 ROUND_TRIP = settings(max_examples=int(os.environ.get("EAVES_FUZZ_EXAMPLES", 20)), deadline=None,
                       derandomize=not os.environ.get("EAVES_FUZZ_EXPLORE"), database=None,
@@ -56,7 +55,7 @@ def test_any_string_round_trips_through_the_store_and_every_printer(store_url, c
     stored = store.load_run(store.resolve_run(uuid))
     assert (stored.summary.tag, stored.summary.note, stored.placements[0].layer) == (tag, note, layer)
 
-    code, out, _ = _cli(capsys, "show", uuid, "--json", "--db", store_url)
+    code, out, _ = _cli(capsys, "show", uuid, "--json", "-", "--db", store_url)
     doc = json.loads(out)
     assert code == 0 and (doc["run"]["tag"], doc["run"]["note"], doc["layers"][0]["layer"]) == (tag, note, layer)
 

@@ -16,7 +16,6 @@ import pytest
 from eaves import interrupts
 from eaves.store import Store
 from run_records import record
-from store_backends import store_url  # noqa: F401  (fixture)
 
 HARNESS = textwrap.dedent("""
     import sys, time

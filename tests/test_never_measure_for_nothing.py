@@ -15,15 +15,8 @@ from eaves.cli import main
 from eaves.errors import EXIT_INTERRUPTED, EXIT_STORE, StoreError
 from eaves.store import Store
 from run_records import record
-from store_backends import pg_base_url, pg_schema_url, store_url  # noqa: F401  (fixture)
+from store_backends import pg_base_url, pg_schema_url
 from survey_fakes import ARGS, fake_survey, read_only
-
-
-@pytest.fixture()
-def place(tmp_path, monkeypatch):
-    monkeypatch.chdir(tmp_path)
-    monkeypatch.setenv("EAVES_SPOOL", str(tmp_path / "spool.db"))
-    return tmp_path
 
 
 def _store_with_a_run(path) -> str:

@@ -8,7 +8,7 @@ import statistics
 import numpy as np
 import pytest
 
-from eaves.compare import NOISE, SLOWER, compare
+from eaves.compare import HELD, LOST, compare
 from eaves.metrics import MetricKey
 from eaves.noise import (DEFAULT_SPREAD, MIN_HISTORY_RUNS, NOISE_MULTIPLE, RunNoise, default_noise, larger, learn,
                          noise_of, spread_of)
@@ -86,9 +86,10 @@ def test_consecutive_changes_are_steadier_than_the_deviation_from_the_median_wit
 def test_defaults_and_learning():
     assert default_noise("memory", 2) == RunNoise(DEFAULT_SPREAD["memory"], "default", 2)
     assert default_noise("memory").floor == pytest.approx(NOISE_MULTIPLE * DEFAULT_SPREAD["memory"])
-    assert default_noise("layers") == RunNoise(0.0, "none", 0)  # no default exists for layer timings
+    assert default_noise("layers") == RunNoise(DEFAULT_SPREAD["layers"], "default", 0)
+    assert default_noise("no-such-suite") == RunNoise(0.0, "none", 0)  # no default: threshold and rank test alone
     assert set(DEFAULT_SPREAD) == {"sweep", "memory", "latency", "stride", "gather", "scaling", "clock",
-                                   "compute", "gemm"}
+                                   "compute", "gemm", "layers"}
     k1 = MetricKey("memory", "read", None, "fp64", 1, "L1", None, None)
     k2 = MetricKey("latency", "chase", None, "int64", 1, "L1", None, None)
     learned = learn([{k1: 100.0, k2: 1.0}, {k1: 104.0}, {k1: 100.0, k2: 1.1}])
@@ -102,11 +103,11 @@ def test_defaults_and_learning():
 def test_compare_holds_a_change_to_the_larger_of_threshold_and_floor():
     before = [100.0, 100.5, 99.5, 100.2, 99.8]
     after = [x * 0.9 for x in before]  # 10 % down, complete separation
-    assert compare(before, after).verdict == SLOWER  # samples and 3 % only
+    assert compare(before, after).verdict == LOST  # samples and 3 % only
     wobbly = RunNoise(0.03, "history", 10)  # floor 4.5 x 3 % = 13.5 %
     c = compare(before, after, noise=wobbly)
-    assert c.verdict == NOISE and c.noise is wobbly and c.floor == pytest.approx(NOISE_MULTIPLE * 0.03)
-    assert compare(before, [x * 0.8 for x in before], noise=wobbly).verdict == SLOWER
+    assert c.verdict == HELD and c.noise is wobbly and c.floor == pytest.approx(NOISE_MULTIPLE * 0.03)
+    assert compare(before, [x * 0.8 for x in before], noise=wobbly).verdict == LOST
     steady = RunNoise(0.001, "history", 10)  # floor below the threshold: the threshold governs
-    assert compare(before, [x * 0.98 for x in before], noise=steady).verdict == NOISE
-    assert compare(before, [x * 0.98 for x in before], threshold=0.01, noise=steady).verdict == SLOWER
+    assert compare(before, [x * 0.98 for x in before], noise=steady).verdict == HELD
+    assert compare(before, [x * 0.98 for x in before], threshold=0.01, noise=steady).verdict == LOST

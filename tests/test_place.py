@@ -35,12 +35,30 @@ def test_compute_bound_layer_placement_worked_by_hand(model):
     assert p.bound == "compute" and p.roof == "fp32 peak"
     assert p.attainable_flops_per_s == pytest.approx(100e9)
     assert p.efficiency == pytest.approx(p.flops_per_s / p.attainable_flops_per_s) == pytest.approx(0.33554432)
-    assert p.extra["headroom"] == pytest.approx(1 / p.efficiency)
-    assert p.extra["memory_roof"] == "L3" and p.extra["consistent_level"] == "L3"
-    assert p.extra["compute_efficiency"] == pytest.approx(p.flops_per_s / 100e9)
-    assert p.extra["memory_efficiency"] == pytest.approx(p.bytes_per_s / 55e9)
-    assert p.extra["achievable_efficiency"] == pytest.approx(p.flops_per_s / 80e9)
-    assert p.extra["macs"] == p.flops / 2
+    assert p.headroom == pytest.approx(1 / p.efficiency)
+    assert p.memory_roof == "L3" and p.consistent_level == "L3"
+    assert p.compute_efficiency == pytest.approx(p.flops_per_s / 100e9)
+    assert p.memory_efficiency == pytest.approx(p.bytes_per_s / 55e9)
+    assert p.achievable_efficiency == pytest.approx(p.flops_per_s / 80e9)
+    assert p.macs == p.flops / 2
+
+
+def test_a_placement_in_json_keeps_the_keys_it_always_had(model):
+    # The roofs a layer is held against became fields of PlacedLayer (and columns of the store,
+    # migration 0004); the JSON documents keep schema_version 1: the same keys, under "extra" as before.
+    (p,) = place_layers([dense(1e-3, batch=8)], model)
+    d = json.loads(json.dumps(p.to_dict(), allow_nan=False))
+    assert list(d) == ["layer", "kind", "dtype", "threads", "batch", "seconds", "samples", "flops", "bytes",
+                       "flops_per_byte", "flops_per_s", "bytes_per_s", "attainable_flops_per_s", "efficiency",
+                       "bound", "roof", "extra"]
+    assert list(d["extra"]) == ["macs", "where", "working_set_bytes", "memory_roof", "memory_roof_bytes_per_s",
+                                "memory_roof_kernel", "compute_roof", "compute_roof_ops_per_s",
+                                "ridge_flops_per_byte", "memory_efficiency", "compute_efficiency",
+                                "achievable_efficiency", "headroom", "consistent_level", "threads_measured",
+                                "threads_match", "memory_threads_measured", "items_per_s"]
+    assert d["extra"]["headroom"] == 1 / p.efficiency and d["extra"]["working_set_bytes"] == p.bytes
+    assert d["extra"]["memory_roof"] == p.memory_roof and d["extra"]["where"] == "f.csv:d"
+    assert d["samples"] == [1e-3] and d["extra"]["items_per_s"] == p.extra["items_per_s"]
 
 
 def test_memory_bound_side_of_the_ridge(model):
@@ -50,18 +68,18 @@ def test_memory_bound_side_of_the_ridge(model):
     (p,) = place_layers([add], model)
     assert p.bound == "memory" and p.roof == "DRAM"
     assert p.attainable_flops_per_s == pytest.approx(20e9 / 12)
-    assert p.extra["consistent_level"] == "DRAM"  # 5 GB/s is within the DRAM roof
-    assert p.efficiency == pytest.approx(p.extra["memory_efficiency"])  # on the slope both are the same
+    assert p.consistent_level == "DRAM"  # 5 GB/s is within the DRAM roof
+    assert p.efficiency == pytest.approx(p.memory_efficiency)  # on the slope both are the same
 
 
 def test_small_working_set_is_held_against_its_cache_level(model):
     small = LayerSpec("relu", "elementwise", "fp32", 1, (1e-6,), dict(elements=1024))  # 8 KiB
     (p,) = place_layers([small], model)
-    assert p.extra["memory_roof"] == "L1" and p.extra["working_set_bytes"] == 8 * KIB
+    assert p.memory_roof == "L1" and p.working_set_bytes == 8 * KIB
     # bandwidth above the fit level's roof is consistent only with a faster level
     big = LayerSpec("add", "elementwise", "fp32", 1, (1.3e-3,), dict(elements=4 * 1024 * 1024, inputs=2))
     (q,) = place_layers([big], model)  # 50 MiB in 1.3 ms = 40 GB/s > DRAM's 20 GB/s
-    assert q.bound == "impossible" or q.extra["consistent_level"] in ("L1", "L2", "L3")
+    assert q.bound == "impossible" or q.consistent_level in ("L1", "L2", "L3")
 
 
 def test_a_layer_above_every_roof_is_flagged_impossible(model):
@@ -74,7 +92,7 @@ def test_a_layer_above_every_roof_is_flagged_impossible(model):
 
 def test_thread_mismatch_uses_the_nearest_measured_count(model):
     (p,) = place_layers([dense(1e-3, threads=3)], model)
-    assert p.extra["threads_match"] == "nearest" and p.extra["threads_measured"] == 2
+    assert p.threads_match == "nearest" and p.threads_measured == 2
     assert p.attainable_flops_per_s == pytest.approx(200e9)
 
 

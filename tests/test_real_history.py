@@ -13,7 +13,7 @@ FIXTURE = Path(__file__).parent / "fixtures" / "zen3-kvm-2cpu" / "ten-quick-surv
 
 
 def _flags(url, a, b, capsys) -> dict[str, str]:
-    main(["diff", str(a), str(b), "--json", "--db", url])
+    main(["diff", str(a), str(b), "--json", "-", "--db", url])
     doc = json.loads(capsys.readouterr().out)
     return {c["name"]: c["verdict"] for c in doc["ceilings"] if c.get("verdict")}
 
@@ -42,7 +42,7 @@ def test_back_to_back_surveys_flag_few_figures_and_a_planted_20_percent_drop_is_
     flagged = total = 0
     for a, b in zip(ids, ids[1:]):
         verdicts = _flags(url, a, b, capsys)
-        flagged += sum(v != "within noise" for v in verdicts.values())
+        flagged += sum(v != "held" for v in verdicts.values())
         total += len(verdicts)
     assert total > 300 and flagged <= 0.05 * total, f"{flagged} of {total} flagged"
     # the drop goes into the steadiest memory ceiling: on this host DRAM read moves ~11 % run to run, and
@@ -52,6 +52,6 @@ def test_back_to_back_surveys_flag_few_figures_and_a_planted_20_percent_drop_is_
     store.close()
     key, noise = min(((k, n) for k, n in steady.items() if k.suite == "memory"), key=lambda kn: kn[1].spread)
     assert noise.floor < 0.2, f"the steadiest memory ceiling {key.name()} moves {noise.spread:.1%} run to run"
-    assert _flags(url, ids[-2], ids[-1], capsys)[key.name()] == "within noise"
+    assert _flags(url, ids[-2], ids[-1], capsys)[key.name()] == "held"
     _plant_drop(db, ids[-1], key, 0.8)
-    assert _flags(url, ids[-2], ids[-1], capsys)[key.name()] == "slower"
+    assert _flags(url, ids[-2], ids[-1], capsys)[key.name()] == "lost"

@@ -12,11 +12,10 @@ from sqlalchemy import create_engine, text
 from sqlalchemy.orm import Session
 
 from eaves import schema
-from eaves.run_rows import record_rows, write_rows
 from eaves.store import Store
 from eaves.transfer import push, save_or_spool
-from run_records import placement, record
-from store_backends import pg_schema_url, run_cli  # noqa: F401  (fixtures)
+from run_records import placement, record, write_before_0004
+from store_backends import pg_schema_url
 from test_transfer import _dead_server_url
 
 
@@ -116,9 +115,10 @@ def test_a_spool_an_older_eaves_made_is_migrated_and_pushed(tmp_path, run_cli):
     rec = record()
     rec.uuid = "11111111-2222-4333-8444-555555555555"
     with Session(engine) as session, session.begin():
-        write_rows(session, record_rows(rec))
+        write_before_0004(session, rec)  # its placements' roofs under extra, as 0002 kept them
     engine.dispose()
     target = f"sqlite:///{tmp_path / 'store.db'}"
     code, out, _ = run_cli("push", "--db", target, "--spool", str(spool))
     assert code == 0 and "1 run(s) sent" in out
     assert [r.uuid for r in Store(target).runs()] == [rec.uuid]
+    assert Store(target).load_run(1).placements == tuple(rec.placements)

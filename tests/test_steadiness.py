@@ -50,7 +50,7 @@ def test_the_steadiness_query_counts_only_runs_up_to_the_one_shown(store):
 
 
 def test_show_json_carries_each_headline_ceilings_spread(store, capsys):
-    doc = json.loads(_show(store, capsys, "5", "--json"))
+    doc = json.loads(_show(store, capsys, "5", "--json", "-"))
     memory, latency, compute = (doc["ceilings"][k] for k in ("memory", "latency", "compute"))
     assert memory and latency and compute
     assert all(r["steadiness"]["runs"] == 5 for r in memory + latency)
@@ -67,7 +67,7 @@ def test_show_json_carries_each_headline_ceilings_spread(store, capsys):
 
 
 def test_show_json_has_no_steadiness_without_three_runs(store, capsys):
-    doc = json.loads(_show(store, capsys, "2", "--json"))
+    doc = json.loads(_show(store, capsys, "2", "--json", "-"))
     rows = [r for k in ("memory", "latency", "compute") for r in doc["ceilings"][k]]
     assert rows and not any("steadiness" in r or "peak_steadiness" in r for r in rows)
 

@@ -22,7 +22,7 @@ from eaves.errors import EXIT_STORE, StoreError
 from eaves.models import SCHEMA_REVISION, Host
 from eaves.store import Store, mask_url
 from run_records import figures, placement, record
-from store_backends import pg_base_url, run_cli, store_url  # noqa: F401  (fixtures)
+from store_backends import pg_base_url
 
 
 
@@ -78,7 +78,7 @@ def test_listing_is_newest_first_and_filters_by_host(store_url):
     assert [r.uuid for r in store.runs(host="rack3-node08:f00dfeed")] == [b1]
     assert [r.uuid for r in store.runs(status="interrupted")] == [a2]
     assert [r.uuid for r in store.runs(limit=1)] == [a2]
-    hosts = {h[1]: h[2] for h in store.hosts()}
+    hosts = {h.hostname: h.runs for h in store.hosts()}
     assert hosts == {"rack3-node07": 2, "rack3-node08": 1}
 
 
@@ -86,7 +86,7 @@ def test_same_hostname_with_new_hardware_is_a_new_host(store_url):
     store = Store(store_url)
     store.save_run(record("rack3-node07", fingerprint="aaaa"))
     store.save_run(record("rack3-node07", fingerprint="bbbb", minutes=1))
-    assert sorted(h[0] for h in store.hosts()) == ["rack3-node07:aaaa", "rack3-node07:bbbb"]
+    assert sorted(h.host_key for h in store.hosts()) == ["rack3-node07:aaaa", "rack3-node07:bbbb"]
 
 
 def test_latest_complete_run_ignores_interrupted_and_failed_ones(store_url):
@@ -146,7 +146,7 @@ def test_eight_writers_lose_and_double_nothing(store_url, tmp_path):
     assert len(stored_uuids) == writers * runs_each  # none lost, none doubled
     assert sorted(stored_uuids) == sorted(reported) and len(set(stored_uuids)) == len(stored_uuids)
     assert {r.n_figures for r in stored} == {2}  # each run complete with its figures
-    hosts = {h[1]: h[2] for h in store.hosts()}
+    hosts = {h.hostname: h.runs for h in store.hosts()}
     assert hosts == {"shared-rig": writers * runs_each // 2,
                      **{f"writer{w}": runs_each // 2 for w in range(writers)}}
 
@@ -183,7 +183,7 @@ def test_a_host_added_meanwhile_by_another_writer_is_reused(store_url):
         writer.join(30)
     engine.dispose()
     assert saved == [rec.uuid]  # PostgreSQL: the unique-key race was retried, not reported
-    assert [(h[0], h[2]) for h in store.hosts()] == [(rec.host_key, 1)]
+    assert [(h.host_key, h.runs) for h in store.hosts()] == [(rec.host_key, 1)]
 
 
 # -- bad input ---------------------------------------------------------------------------------

@@ -17,7 +17,7 @@ from eaves.records import RunRecord
 from eaves.run_rows import RunRefused
 from eaves.store import Store
 from run_records import placement, record
-from store_backends import backend_url, store_url  # noqa: F401  (fixtures)
+from store_backends import backend_url
 
 # Python-side results of the ORM's own defaults and keys; everything else must match.
 IGNORED = {"id", "run_id", "host_id", "first_seen"}

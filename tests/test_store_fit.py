@@ -59,10 +59,10 @@ def real_memory_figures(folder: Path) -> list[Figure]:
     SQLite makes -wal and -shm files beside a WAL database even to read it)."""
     copy = folder / REAL_STORE.name
     shutil.copy(REAL_STORE, copy)
-    source = Store(f"sqlite:///{copy}", create=False, readonly=True, check_schema=False)
+    source = Store(f"sqlite:///{copy}", create=False, check_schema=False)
     try:
+        source.upgrade_schema()  # load_run reads through the models: the columns of this revision
         run_id = source.runs(limit=1)[0].id
-        # load_run reads through the models; the fixture's columns are those of every revision
         return list(source.load_run(run_id).figures)
     finally:
         source.close()

@@ -94,10 +94,13 @@ def test_runs_hosts_show_print_stored_strings_as_written(tmp_path, capsys):
     assert f"tag {MARKUP}" in out and "note: \\x1b]0;title\\x07" in out
     code, out, _ = _cli(capsys, "show", "2", "--db", store.url)
     assert "tag \\x1b]0;title\\x07" in out and ":thumbs_up: [bold]x" in out  # no emoji, no style
-    code, out, _ = _cli(capsys, "show", "2", "--json", "--db", store.url)
+    code, out, _ = _cli(capsys, "show", "2", "--json", "-", "--db", store.url)
     run = json.loads(out)["run"]
     assert (run["tag"], run["note"], run["host_key"]) == (TITLE, MARKUP + " :thumbs_up: [bold]x",
                                                            "lab[/x]\x1b[2J-0badc0de")  # JSON: exact
+    for argv, key in ((("runs",), "runs"), (("hosts",), "hosts")):
+        code, out, _ = _cli(capsys, *argv, "--json", "-", "--db", store.url)
+        assert code == 0 and "lab[/x]\x1b[2J-0badc0de" in {r["host_key"] for r in json.loads(out)[key]}
     code, out, err = _cli(capsys, "diff", "1", "2", "--db", store.url)
     assert code in (0, 1), err
     _clean(out + err)

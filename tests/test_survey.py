@@ -46,7 +46,7 @@ def test_survey_stores_a_complete_run_with_charts_and_json(place, capsys):
 
     assert main(["show", runs[0].uuid[:8], "--db", url]) == 0
     assert "Memory ceilings" in capsys.readouterr().out
-    assert main(["show", str(runs[0].id), "--json", "--db", url]) == 0
+    assert main(["show", str(runs[0].id), "--json", "-", "--db", url]) == 0
     assert json.loads(capsys.readouterr().out)["run"]["uuid"] == runs[0].uuid
     assert main(["runs", "--db", url]) == 0
     assert runs[0].uuid[:8] in capsys.readouterr().out

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import socket
+from pathlib import Path
 
 import pytest
 
@@ -11,7 +12,6 @@ from eaves.errors import StoreError
 from eaves.store import Store
 from eaves.transfer import copy_runs, push, save_or_spool
 from run_records import figures, record
-from store_backends import run_cli, store_url  # noqa: F401  (fixtures)
 
 
 def _dead_server_url() -> str:
@@ -90,10 +90,34 @@ def test_merge_imports_hosts_and_runs_once_and_leaves_the_file_alone(store_url, 
     assert code == 0 and "1 run(s) imported, 1 already there" in out
     assert run_cli("merge", str(lab), "--db", store_url)[1].count("0 run(s) imported, 2 already there") == 1
     assert hashlib.sha256(lab.read_bytes()).hexdigest() == before
-    hosts = {h[1]: h[2] for h in target.hosts()}
+    hosts = {h.hostname: h.runs for h in target.hosts()}
     assert hosts == {"rack3-node07": 2, "bench-box": 1}  # matched by host key, not duplicated
     imported = target.runs(host="bench-box")[0]
     assert imported.status == "interrupted" and imported.n_figures == len(figures())
+
+
+def test_merge_of_a_file_of_the_first_schema_imports_its_runs_and_placements(store_url, tmp_path, run_cli):
+    # the fixture was made by schema 0001 (tests/fixtures/make_store_v1.py): its placements keep their
+    # roofs under extra; merge reads a migrated copy, and the file itself stays as it was
+    import shutil
+
+    from eaves import schema
+    from run_records import placement
+    from sqlalchemy import create_engine
+
+    lab = tmp_path / "old-lab.db"
+    shutil.copy(Path(__file__).parent / "fixtures" / "store_v1.db", lab)
+    before = hashlib.sha256(lab.read_bytes()).hexdigest()
+    code, out, _ = run_cli("merge", str(lab), "--db", store_url)
+    assert code == 0 and "2 run(s) imported" in out
+    assert hashlib.sha256(lab.read_bytes()).hexdigest() == before
+    engine = create_engine(f"sqlite:///{lab}")
+    with engine.connect() as conn:
+        assert schema.current_revision(conn) == "0001"
+    engine.dispose()
+    target = Store(store_url)
+    complete = target.load_run(target.latest_complete_run("oldlab-node01"))
+    assert list(complete.figures) == figures() and complete.placements == (placement(),)
 
 
 def test_merge_of_a_missing_file_is_bad_input_naming_the_file(tmp_path, run_cli):

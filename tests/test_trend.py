@@ -13,18 +13,12 @@ from layer_fixtures import HOST_KEY, HOSTNAME
 from rich.console import Console
 
 from eaves.cli import build_parser, main
-from eaves.commands.trend import check_after_survey
+from eaves.verdicts import check_after_survey
 from eaves.errors import EXIT_INPUT, EXIT_WORSE
 from eaves.metrics import key_of
 from eaves.noise import DEFAULT_NOISE_RUNS, DEFAULT_SPREAD, NOISE_MULTIPLE, steadiness
 from eaves.store import Store
 from eaves.trend import check_run, trend
-from store_backends import store_url  # noqa: F401  (fixture)
-
-
-@pytest.fixture
-def store(tmp_path):
-    return Store(f"sqlite:///{tmp_path / 't.db'}")
 
 
 def test_drift_is_flagged_from_the_run_it_starts_and_not_before(store):
@@ -33,7 +27,7 @@ def test_drift_is_flagged_from_the_run_it_starts_and_not_before(store):
     dram = next(m for m in t.metrics if m.key.name() == "memory/copy/DRAM/1t")
     flags = [p.drifted for p in dram.points]
     assert flags[:9] == [False] * 9 and flags[9] is True
-    assert dram.points[9].comparison.verdict == "slower"
+    assert dram.points[9].comparison.verdict == "lost"
     # the baseline of a run is the median of the medians of the 5 runs before it
     assert dram.points[9].baseline == pytest.approx(statistics.median(p.median for p in dram.points[4:9]))
     # once the drop has become the baseline, it is no longer drift
@@ -46,7 +40,7 @@ def test_cli_filters_by_metric_and_date_and_draws_charts(store, tmp_path, capsys
     fill_history(store, 8, seed=2, drift_from=7, drift={"latency/chase/DRAM": 1.25})
     since = (T0.replace(tzinfo=None)).isoformat()[:10]
     code = main(["trend", "--host", HOSTNAME, "--metric", "latency/*", "--since", "2026-02-04",
-                 "--chart", str(tmp_path / "charts"), "--json", "--db", store.url])
+                 "--chart", str(tmp_path / "charts"), "--json", "-", "--db", store.url])
     doc = json.loads(capsys.readouterr().out)
     assert code == EXIT_WORSE  # the newest run's DRAM latency regressed
     assert {c["suite"] for c in doc["ceilings"]} == {"latency"} and since == "2026-02-01"
@@ -54,7 +48,7 @@ def test_cli_filters_by_metric_and_date_and_draws_charts(store, tmp_path, capsys
     first = doc["ceilings"][0]["points"][0]
     assert first["baseline"] is not None  # runs before --since still form the first baseline
     dram = next(c for c in doc["ceilings"] if c["cache_level"] == "DRAM")
-    assert dram["points"][-1]["drifted"] and dram["points"][-1]["comparison"]["verdict"] == "slower"
+    assert dram["points"][-1]["drifted"] and dram["points"][-1]["comparison"]["verdict"] == "lost"
     charts = sorted((tmp_path / "charts").iterdir())
     assert len(charts) == 2 * len(doc["ceilings"]) and all(p.stat().st_size > 1000 for p in charts)
 
@@ -63,7 +57,7 @@ def test_table_output_lists_drift(store, capsys):
     fill_history(store, 7, seed=4, drift_from=6, drift={"compute/madd-peak": 0.7})
     assert main(["trend", "--host", HOSTNAME, "--metric", "compute", "--db", store.url]) == EXIT_WORSE
     out = capsys.readouterr().out
-    assert "drift: compute/madd-peak/fp32/1t" in out and "slower" in out
+    assert "drift: compute/madd-peak/fp32/1t" in out and "lost" in out
 
 
 @pytest.mark.parametrize("argv, needle", [
@@ -92,7 +86,7 @@ def test_survey_check_flags_a_failing_memory_module(store):
     console = Console(record=True, width=200)
     assert check_after_survey(console, store.url, bad) == EXIT_WORSE
     text = console.export_text()
-    assert "memory/read/DRAM/1t" in text and "regressed" in text
+    assert "memory/read/DRAM/1t" in text and "ceiling(s) lost" in text
     good = store.save_run(survey_record(history_figures(rng), 7))
     assert check_after_survey(Console(record=True), store.url, good) == 0
 
@@ -135,7 +129,7 @@ def test_a_baseline_of_fewer_than_three_runs_reports_but_does_not_fail(store):
     console = Console(record=True, width=200)
     assert check_after_survey(console, store.url, bad) == 0
     text = console.export_text()
-    assert "slower: memory/read/DRAM/1t" in text and "needs 3" in text
+    assert "lost: memory/read/DRAM/1t" in text and "needs 3" in text
     assert main(["trend", "--host", HOSTNAME, "--db", store.url]) == 0  # the same rule for trend's exit code
 
 
@@ -167,9 +161,9 @@ def test_check_still_catches_a_planted_drop_on_a_wobbling_host(store):
     bad = store.save_run(survey_record(figs, 10))
     check = check_run(store, bad)
     (key, _, c), = [r for r in check.changes if r[0].name() == name]
-    assert c.verdict == "slower" and c.change == pytest.approx(-0.2, abs=1e-6) and c.noise.floor < 0.2
+    assert c.verdict == "lost" and c.change == pytest.approx(-0.2, abs=1e-6) and c.noise.floor < 0.2
     assert name in {k.name() for k, _, _ in check.regressions}
     console = Console(record=True, width=200)
     assert check_after_survey(console, store.url, bad) == EXIT_WORSE
     text = console.export_text()
-    assert f"slower: {name}" in text and "run-to-run floor" in text and "learned from this host's runs" in text
+    assert f"lost: {name}" in text and "run-to-run floor" in text and "learned from this host's runs" in text

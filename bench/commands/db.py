@@ -4,18 +4,17 @@ from __future__ import annotations
 
 import argparse
 
+from eaves.cli_options import add_db_option
 from eaves.models import SCHEMA_REVISION
 from eaves.store import Store, default_url
 
-NAME = "db"
 HELP = "show the schema version of a store, or migrate it to the one this eaves uses"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("action", choices=("version", "upgrade"),
                         help="version: print the store's schema version; upgrade: migrate it")
-    parser.add_argument("--db", metavar="URL", default=None,
-                        help="store URL (default: $EAVES_DB or sqlite:///results/eaves.db)")
+    add_db_option(parser)
 
 
 def run(args: argparse.Namespace) -> int:

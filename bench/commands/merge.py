@@ -5,19 +5,18 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from eaves.cli_options import add_db_option
 from eaves.errors import EXIT_OK, EXIT_WORSE
 from eaves.plain import visible
 from eaves.store import default_url, mask_url
 from eaves.transfer import merge
 
-NAME = "merge"
 HELP = "import the hosts and runs of another eaves SQLite file; runs already present are skipped"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("file", metavar="FILE.db", type=Path, help="an eaves SQLite store to read from")
-    parser.add_argument("--db", metavar="URL", default=None,
-                        help="store URL to write to (default: $EAVES_DB or sqlite:///results/eaves.db)")
+    add_db_option(parser)
 
 
 def run(args: argparse.Namespace) -> int:

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import argparse
 
+from eaves.cli_options import add_db_option, add_json_option, check_json_path, json_to_stdout, run_ref, write_json
 from eaves.errors import InputError
 
-NAME = "profile-torch"
 HELP = "time each layer of a PyTorch model (MODULE:FACTORY) on this host and place it under its roofs"
 
 
@@ -20,20 +20,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="fp32; bf16 (hosts with native bf16 only); int8: Linear layers dynamically quantized")
     parser.add_argument("--threads", type=int, default=1, help="torch threads to run with (default 1)")
     parser.add_argument("--quick", action="store_true", help="short samples (for tests and first looks)")
-    parser.add_argument("--run", metavar="R", help="survey run whose roofs to use (id, UUID or prefix; "
+    parser.add_argument("--run", metavar="R", type=run_ref, help="survey run whose roofs to use (id, UUID or prefix; "
                         "default: the newest complete survey of this host)")
-    parser.add_argument("--json", metavar="PATH", help="write the placements as JSON to PATH ('-': stdout)")
+    add_json_option(parser, "the placements, the layers not counted and the whole-pass times")
     parser.add_argument("--chart", metavar="PATH", help="draw the roofline chart to PATH (.png and .svg)")
     parser.add_argument("--layers-out", metavar="FILE",
                         help="write the timed layers as a JSON layer file, to replay with `eaves place FILE`")
     parser.add_argument("--no-store", action="store_true", help="do not store the placements as a run")
-    parser.add_argument("--db", metavar="URL", default=None,
-                        help="store URL (default: $EAVES_DB or sqlite:///results/eaves.db)")
+    add_db_option(parser)
 
 
 def run(args: argparse.Namespace) -> int:
-    from eaves.commands.place import _print, _write_json, store_layers_run
     from eaves.host import collect_host_facts
+    from eaves.layer_runs import store_layers_run
     from eaves.place import Placer, place_layers
     from eaves.roofline import model_from_store
     from eaves.store import Store
@@ -41,6 +40,7 @@ def run(args: argparse.Namespace) -> int:
     from eaves.timing import TimingPolicy
 
     check_thread_counts([args.threads])
+    check_json_path(args.json)
     facts = collect_host_facts()
     store = Store(args.db)
     model = model_from_store(store, args.run, host=facts.host_key())  # no roofs: fail before any timing
@@ -69,38 +69,41 @@ def run(args: argparse.Namespace) -> int:
 
         charts = draw_chart(model, placed, args.chart)
     if args.json:
-        _write_json(args.json, model, placed, [], {}, stored, extra={
-            "model": args.model, "input_shape": list(shape), "dtype": args.dtype,
-            "pass_seconds": list(profile.pass_seconds), "layer_share": profile.layer_share,
-            "not_counted": [{"layer": n.name, "module_type": n.module_type, "seconds": n.median_seconds,
-                             "samples": list(n.seconds), "reason": n.reason} for n in profile.not_counted]})
-    if args.json == "-":
+        from eaves.document import placements_document
+
+        write_json(placements_document(
+            model.run_uuid, model.host_key, placed, stored_run=stored,
+            model=args.model, input_shape=list(shape), dtype=args.dtype,
+            pass_seconds=list(profile.pass_seconds), layer_share=profile.layer_share,
+            not_counted=[{"layer": n.name, "module_type": n.module_type, "seconds": n.median_seconds,
+                          "samples": list(n.seconds), "reason": n.reason} for n in profile.not_counted]), args.json)
+    if json_to_stdout(args.json):
         return 0
-    if placed:
-        _print(model, placed, [], {}, [], None)
-    _print_rest(profile, stored, model, written_layers, charts if args.chart and placed else None)
+    _print(profile, stored, model, placed, written_layers, charts if args.chart and placed else None)
     return 0
 
 
-def _print_rest(profile, stored, model, layers_file, charts) -> None:
-    from rich.console import Console
+def _print(profile, stored, model, placed, layers_file, charts) -> None:
     from rich.table import Table
 
-    from eaves.commands.place import _seconds
+    from eaves.console import make_console, print_placements
     from eaves.plain import plain
+    from eaves.units import format_duration
 
-    console = Console(emoji=False)
+    console = make_console()
+    if placed:
+        print_placements(console, model.run_uuid, model.host_key, placed)
     if profile.not_counted:
         t = Table(title="not counted (timed, but eaves has no operation count for them)", title_justify="left",
                   header_style="bold")
         for col in ("layer", "module", "time", "why"):
             t.add_column(col, justify="right" if col == "time" else "left")
         for n in profile.not_counted:
-            t.add_row(plain(n.name), plain(n.module_type), _seconds(n.median_seconds), plain(n.reason))
+            t.add_row(plain(n.name), plain(n.module_type), format_duration(n.median_seconds), plain(n.reason))
         console.print(t)
     passes = sorted(profile.pass_seconds)
     console.print(f"{plain(profile.model)} at {plain(profile.dtype)}, {profile.threads} thread(s), input "
-                  f"{'x'.join(map(str, profile.input_shape))}: one pass {_seconds(passes[len(passes) // 2])}, "
+                  f"{'x'.join(map(str, profile.input_shape))}: one pass {format_duration(passes[len(passes) // 2])}, "
                   f"{profile.layer_share:.0%} of it inside layers (the rest: code between layers, hooks)",
                   highlight=False)
     roof = model.compute_roof(profile.dtype, profile.threads)

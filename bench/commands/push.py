@@ -5,18 +5,17 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from eaves.cli_options import add_db_option
 from eaves.errors import EXIT_OK, EXIT_WORSE
 from eaves.plain import visible
 from eaves.store import default_url, mask_url
 from eaves.transfer import default_spool, push
 
-NAME = "push"
 HELP = "send runs kept in the local spool (when the store was unreachable) to the store"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--db", metavar="URL", default=None,
-                        help="store URL (default: $EAVES_DB or sqlite:///results/eaves.db)")
+    add_db_option(parser)
     parser.add_argument("--spool", metavar="PATH", type=Path, default=None,
                         help="spool file (default: $EAVES_SPOOL or results/spool.db)")
     parser.add_argument("--retry-quarantined", action="store_true",

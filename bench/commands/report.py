@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from eaves.cli_options import add_db_option
 from eaves.errors import InputError
 
 HELP = "write a self-contained HTML report of a host: facts, ceilings, sweep, roofline, trends, runs"
@@ -14,17 +15,17 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--host", metavar="H", help="host key or hostname (default: this host)")
     p.add_argument("--out", metavar="DIR", default="results", help="folder for the page (default results)")
     p.add_argument("--window", metavar="K", type=int, default=5, help="trend baseline: runs before each (default 5)")
-    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
+    add_db_option(p)
 
 
 def run(args: argparse.Namespace) -> int:
-    from eaves.commands.trend import default_host
+    from eaves.cli_options import host_or_this
     from eaves.report import build_report
     from eaves.store import Store
     from eaves.trend_chart import file_stem
 
     store = Store(args.db, create=False)
-    host = default_host(store, args.host)
+    host = host_or_this(store, args.host)
     report = build_report(store, host, args.window)
     out = Path(args.out)
     path = out / f"report-{file_stem(report.survey.hostname)}.html"

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import sys
 from pathlib import Path
 
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
@@ -11,14 +10,15 @@ from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from eaves import interrupts
 from eaves.budget import make_budget
 from eaves.charts import bandwidth_chart, scaling_chart
-from eaves.document import run_document, write_document
+from eaves.cli_options import add_db_option, add_json_option, check_json_path, json_to_stdout, write_json
+from eaves.console import make_console, print_ceilings
+from eaves.document import run_document
 from eaves.errors import EXIT_BROKEN, EXIT_INTERRUPTED, EXIT_STORE, InputError, StoreError
 from eaves.host import collect_host_facts
 from eaves.memory_survey import MIN_SWEEP_BYTES, plan_memory
-from eaves.outfile import check_output_path, write_text
+from eaves.outfile import write_text
 from eaves.plain import plain, unstorable
 from eaves.survey import SurveyOptions, reported_caches, run_survey
-from eaves.commands._render import make_console, print_ceilings
 from eaves.timing import TimingPolicy
 from eaves.threads import check_thread_counts, default_thread_counts
 from eaves.units import format_bytes, parse_int_list, parse_name_list, parse_size
@@ -33,8 +33,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--max-memory", metavar="SIZE", help="memory cap, e.g. 4GiB (default a quarter of available)")
     p.add_argument("--tag", help="a label such as nightly")
     p.add_argument("--note", help="free text kept with the run")
-    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
-    p.add_argument("--json", metavar="PATH", help="also write the run as a JSON document ('-' for stdout)")
+    add_db_option(p)
+    add_json_option(p, "the run (docs/json.md); with '-' the tables go to standard error")
     p.add_argument("--dtypes", metavar="LIST", help="compute dtypes, e.g. fp64,fp32,int8 (default all)")
     p.add_argument("--only", metavar="PARTS", help="memory, compute or both (default both)")
     p.add_argument("--charts", metavar="DIR", default="results", help="folder for the charts (default results)")
@@ -44,7 +44,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--step-seconds", metavar="S", help="give every measurement step at most S seconds once "
                    "compiled (default: ten times what its own plan needs, at least 40 s)")
     p.add_argument("--check", action="store_true", help="after saving, compare the run with this host's baseline "
-                   "(median of its last 5 complete runs); exit 1 if a ceiling regressed beyond noise")
+                   "(median of its last 5 complete runs); exit 1 if a ceiling was lost (docs/comparing.md)")
 
 
 def _options(args: argparse.Namespace, host) -> SurveyOptions:
@@ -66,7 +66,7 @@ def _options(args: argparse.Namespace, host) -> SurveyOptions:
     plan = plan_memory(llc.size_bytes if llc else None, counts, budget, args.quick, policy=policy, top_bytes=top,
                        numa_nodes=host.numa_nodes, socket_cache_bytes=host.socket_cache_bytes())
     return SurveyOptions(args.quick, tuple(counts), budget, plan, dtypes, args.tag, args.note, parts,
-                         _seconds(args.step_seconds, "--step-seconds", 0, 86400) if args.step_seconds else None)
+                         _seconds_option(args.step_seconds, "--step-seconds", 0, 86400) if args.step_seconds else None)
 
 
 def _sweep_top(text: str) -> int:
@@ -78,7 +78,7 @@ def _sweep_top(text: str) -> int:
     return top
 
 
-def _seconds(text: str, option: str, low: float, high: float) -> float:
+def _seconds_option(text: str, option: str, low: float, high: float) -> float:
     """A number of seconds in (low, high], or a one-line InputError naming the option."""
     try:
         seconds = float(text)
@@ -97,7 +97,7 @@ def _policy(args: argparse.Namespace) -> TimingPolicy:
         if not 1 <= samples <= 1000:
             raise InputError(f"--samples: {samples} is outside 1..1000")
     if args.sample_seconds:
-        seconds = _seconds(args.sample_seconds, "--sample-seconds", 0, 10)
+        seconds = _seconds_option(args.sample_seconds, "--sample-seconds", 0, 10)
     return TimingPolicy(min_seconds=seconds, samples=samples)
 
 
@@ -142,13 +142,12 @@ def cautions(host, options: SurveyOptions) -> list[str]:
 def run(args: argparse.Namespace) -> int:
     host = collect_host_facts()
     options = _options(args, host)
-    check_output_path(args.json, "--json")
+    check_json_path(args.json)
     charts_dir = _check_charts_dir(args.charts)
     from eaves.destination import choose_destination
 
     destination = choose_destination(args.db)  # neither the store nor the spool takes a write: stop now
-    to_stdout = args.json == "-"
-    console = make_console(stderr=to_stdout)
+    console = make_console(stderr=json_to_stdout(args.json))
     for line in cautions(host, options):
         console.print(f"[yellow]![/] {line}")
     if destination.spooled:
@@ -198,7 +197,7 @@ def run(args: argparse.Namespace) -> int:
                       "figure that was measured")
         return EXIT_BROKEN
     if args.check:
-        from eaves.commands.trend import check_after_survey
+        from eaves.verdicts import check_after_survey
 
         return check_after_survey(console, args.db, record.uuid, spooled=saved.spooled)
     return 0
@@ -223,24 +222,22 @@ def _write_json(doc, path, saved):
     if not path:
         return None
     try:
-        text = write_document(doc, path)
+        write_json(doc, path)
     except InputError as err:
         if saved is not None:
             raise InputError(f"{err} (the run is stored all the same: {saved.uuid} in {saved.where})") from None
         return None
-    if text is not None:
-        sys.stdout.write(text + "\n")
-        return None
-    return path
+    return None if json_to_stdout(path) else path
 
 
 def _keep_unstored(doc, folder: Path, uuid: str, reason: str) -> str:
     """Write the JSON document of a run no store took into the charts folder, else the temp folder;
     returns its path. StoreError when even that fails."""
-    import json
     import tempfile
 
-    text, errors = json.dumps(doc, indent=2) + "\n", []
+    from eaves.cli_options import json_text
+
+    text, errors = json_text(doc), []
     for place in (folder, Path(tempfile.gettempdir())):
         path = str(place / f"unstored-run-{uuid}.json")
         try:

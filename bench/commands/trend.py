@@ -3,14 +3,14 @@
 from __future__ import annotations
 
 import argparse
-import json
-import sys
 
+from eaves.cli_options import add_db_option, add_json_option, check_json_path, json_to_stdout, write_json
 from eaves.compare import DEFAULT_THRESHOLD
 from eaves.errors import EXIT_WORSE, InputError
 from eaves.trend import DEFAULT_LAST, DEFAULT_WINDOW, MIN_BASELINE_RUNS
 
 HELP = "history of a host's ceilings, each run against the median of the runs before it; drift flagged"
+DOCUMENT_SCHEMA, DOCUMENT_VERSION = "eaves.trend", 2  # 2: verdicts gained | lost | held (unversioned before)
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -25,25 +25,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--threshold", metavar="PCT", default=str(DEFAULT_THRESHOLD * 100),
                    help=f"smallest move that counts as drift, in percent (default {DEFAULT_THRESHOLD * 100:g})")
     p.add_argument("--chart", metavar="DIR", help="draw one chart per ceiling over time into DIR (PNG and SVG)")
-    p.add_argument("--json", action="store_true", help="print the history as JSON")
-    p.add_argument("--db", metavar="URL", help="store URL (default $EAVES_DB or sqlite:///results/eaves.db)")
-
-
-def default_host(store, host) -> str:
-    """The host asked for, else this host; an unknown host is an InputError listing the known ones."""
-    hosts = store.hosts()
-    if host is None:
-        from eaves.host import collect_host_facts
-
-        host = collect_host_facts().host_key()
-    if not any(host in (h[0], h[1]) for h in hosts):
-        known = ", ".join(h[0] for h in hosts[:8]) or "none"
-        raise InputError(f"--host {host}: no such host in {store.shown_url} (known: {known})")
-    return host
+    add_json_option(p, "the history")
+    add_db_option(p)
 
 
 def run(args: argparse.Namespace) -> int:
-    from eaves.commands._verdicts import parse_date, parse_percent
+    from eaves.cli_options import host_or_this, parse_date, parse_percent
     from eaves.store import Store
     from eaves.trend import trend
 
@@ -51,8 +38,9 @@ def run(args: argparse.Namespace) -> int:
     since = parse_date(args.since, "--since") if args.since else None
     if args.last is not None and args.last < 1:
         raise InputError(f"--last: {args.last} must be at least 1")
+    check_json_path(args.json)
     store = Store(args.db, create=False)
-    host = default_host(store, args.host)
+    host = host_or_this(store, args.host)
     result = trend(store, host, args.metric, since, args.window, threshold, args.last)
     if args.metric and not result.metrics:
         raise InputError(f"--metric: no ceiling of {host} matches {', '.join(args.metric)}")
@@ -62,8 +50,8 @@ def run(args: argparse.Namespace) -> int:
 
         written = save_trend_charts(result, args.chart)
     if args.json:
-        sys.stdout.write(json.dumps(_document(result), indent=2, default=str, allow_nan=False) + "\n")
-    else:
+        write_json(_document(result), args.json)
+    if not json_to_stdout(args.json):
         _print(result, written)
     drifted = [m for m in result.metrics if m.latest.drifted and m.latest.comparison.worse
                and m.latest.baseline_runs >= MIN_BASELINE_RUNS]
@@ -71,9 +59,10 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _document(t) -> dict:
-    from eaves.commands._verdicts import comparison_dict
+    from eaves.verdicts import comparison_dict
 
-    return {"host": t.host, "window": t.window, "threshold_pct": t.threshold * 100, "noise_runs": t.noise_runs,
+    return {"schema": DOCUMENT_SCHEMA, "schema_version": DOCUMENT_VERSION,
+            "host": t.host, "window": t.window, "threshold_pct": t.threshold * 100, "noise_runs": t.noise_runs,
             "runs": [vars(r) for r in t.runs],
             "ceilings": [{"name": m.key.name(), **vars(m.key), "unit": m.unit,
                           "points": [{"run_id": p.run.id, "uuid": p.run.uuid, "started_at": p.run.started_at,
@@ -84,15 +73,14 @@ def _document(t) -> dict:
 
 
 def _print(t, written) -> None:
-    from rich.console import Console
-    from eaves.plain import plain
     from rich.table import Table
 
-    from eaves.commands._verdicts import change_cell, floor_cell, format_value, noise_summary, verdict_cell
+    from eaves.console import make_console
+    from eaves.plain import plain
+    from eaves.units import format_figure
+    from eaves.verdicts import change_cell, floor_cell, noise_summary, verdict_cell
 
-    console = Console(highlight=False, emoji=False)
-    if not console.is_terminal:
-        console = Console(width=max(console.width, 160), highlight=False, emoji=False)
+    console = make_console()
     if not t.runs:
         console.print(f"no complete survey runs of {plain(t.host)} in this period")
         return
@@ -106,8 +94,8 @@ def _print(t, written) -> None:
         last = m.latest
         drifts = sum(p.drifted for p in m.points)
         c = last.comparison
-        table.add_row(plain(m.key.name()), str(len(m.points)), format_value(m.points[0].median, m.unit),
-                      format_value(last.baseline, m.unit), format_value(last.median, m.unit),
+        table.add_row(plain(m.key.name()), str(len(m.points)), format_figure(m.points[0].median, m.unit),
+                      format_figure(last.baseline, m.unit), format_figure(last.median, m.unit),
                       change_cell(c) if c else "-", floor_cell(c) if c else "-",
                       verdict_cell(c) if c else "no baseline", str(drifts))
     console.print(table)
@@ -118,48 +106,8 @@ def _print(t, written) -> None:
         for p in m.points:
             if p.drifted:
                 console.print(f"drift: {plain(m.key.name())} run {p.run.id} {plain(p.run.uuid[:8])} "
-                              f"{p.run.started_at:%Y-%m-%d %H:%M}: {format_value(p.baseline, m.unit)} -> "
-                              f"{format_value(p.median, m.unit)} ({p.comparison.change_pct:+.1f}%, "
+                              f"{p.run.started_at:%Y-%m-%d %H:%M}: {format_figure(p.baseline, m.unit)} -> "
+                              f"{format_figure(p.median, m.unit)} ({p.comparison.change_pct:+.1f}%, "
                               f"{p.comparison.verdict})")
     if written:
         console.print(f"charts: {len(written)} files in {written[0].parent}")
-
-
-def check_after_survey(console, db, uuid: str, window: int = DEFAULT_WINDOW,
-                       threshold: float = DEFAULT_THRESHOLD, spooled: bool = False) -> int:
-    """`eaves survey --check`: the saved run against its host's baseline; EXIT_WORSE on a regression."""
-    from eaves.plain import plain
-
-    if spooled:  # the store was unreachable: the baseline is there too
-        console.print("[yellow]check: skipped, the run was spooled, not stored; "
-                      "`eaves push` it, then `eaves trend` shows how it compares[/]")
-        return 0
-
-    from eaves.commands._verdicts import floor_cell, format_value, noise_summary
-    from eaves.store import Store
-    from eaves.trend import check_run
-
-    check = check_run(Store(db), uuid, window, threshold)
-    if not check.baseline_runs:
-        console.print("check: no earlier complete survey of this host: this run starts its baseline")
-        return 0
-    console.print(f"check: against the median of {len(check.baseline_runs)} earlier run(s), "
-                  f"threshold {threshold:.0%}")
-    line = noise_summary(c for _, _, c in check.changes)
-    if line:
-        console.print(f"check: {line}")
-    for key, unit, c in check.moved:
-        style = "bold red" if c.worse else "green"
-        floor = floor_cell(c)
-        console.print(f"[{style}]{c.verdict}[/]: {plain(key.name())} {format_value(c.before, unit)} -> "
-                      f"{format_value(c.after, unit)} ({c.change_pct:+.1f}%"
-                      + (f"; run-to-run floor {plain(floor)}" if floor != "-" else "") + ")")
-    if check.regressions and len(check.baseline_runs) < MIN_BASELINE_RUNS:
-        console.print(f"[yellow]check: the baseline has {len(check.baseline_runs)} run(s); failing on a "
-                      f"regression needs {MIN_BASELINE_RUNS}, so this is reported, not failed[/]")
-        return 0
-    if check.regressions:
-        console.print(f"[bold red]check: {len(check.regressions)} ceiling(s) regressed beyond noise[/]")
-        return EXIT_WORSE
-    console.print("check: no ceiling regressed beyond noise")
-    return 0

@@ -128,7 +128,7 @@ def main() -> None:
     store = Store(url)
     t = time.perf_counter()
     if args.reuse and store.run_uuids():
-        keys = [h[0] for h in sorted(store.hosts(), key=lambda h: -h[2])]
+        keys = [h.host_key for h in sorted(store.hosts(), key=lambda h: -h.runs)]
         print(f"reusing {len(store.run_uuids())} runs on {len(keys)} hosts ({url})")
     else:
         keys = fill(store, args.runs)

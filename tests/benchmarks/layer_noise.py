@@ -43,7 +43,8 @@ def main() -> int:
     ids = [store.resolve_run(u) for u in uuids]
     order = {run_id: n for n, run_id in enumerate(ids)}
     rates: dict = defaultdict(list)
-    for run_id, layer, seconds in sorted(store.placement_seconds(ids), key=lambda r: order[r[0]]):
+    for run_id, layer, seconds in ((t.run_id, t.layer, t.seconds)
+                                   for t in sorted(store.placement_seconds(ids), key=lambda t: order[t.run_id])):
         rates[layer].append(1.0 / seconds)
     changes = {layer: statistics.median(abs(b / a - 1) for a, b in zip(v, v[1:]))
                for layer, v in rates.items() if len(v) == len(ids)}
@@ -54,7 +55,7 @@ def main() -> int:
     failed = total = 0
     for a, b in zip(uuids, uuids[1:]):
         out = subprocess.run([sys.executable, "-m", "eaves", "gate", "--baseline", a, "--candidate", b, "--json",
-                              "--db", args.db], capture_output=True, text=True)
+                              "-", "--db", args.db], capture_output=True, text=True)
         doc = json.loads(out.stdout)
         failed += len(doc["failed"])
         total += len(doc["layers"])

@@ -121,11 +121,11 @@ def main() -> int:
     print("latency working sets: " + ("the same in every run" if not moving else f"MOVED: {moving}"))
     flagged = total = 0
     for a, b in zip(uuids, uuids[1:]):
-        out = subprocess.run([sys.executable, "-m", "eaves", "diff", a, b, "--json", "--db", args.db],
+        out = subprocess.run([sys.executable, "-m", "eaves", "diff", a, b, "--json", "-", "--db", args.db],
                              capture_output=True, text=True)
         doc = json.loads(out.stdout)
         verdicts = [c.get("verdict") for c in doc["ceilings"] if c.get("verdict")]
-        flagged += sum(v in ("faster", "slower") for v in verdicts)
+        flagged += sum(v in ("gained", "lost") for v in verdicts)
         total += len(verdicts)
     if total:
         print(f"eaves diff over {len(uuids) - 1} consecutive pairs: {flagged} of {total} figures flagged "
