@@ -113,7 +113,7 @@ def copy_runs(source: Store, target: Store, remove: bool = False, *,
         except RunRefused as err:
             refusal = Refusal(uuid, rows.host["hostname"], rows.run["started_at"], err.reason)
             if quarantine:
-                source.write(lambda session: _quarantine(session, uuid, err.reason, target.shown_url),
+                source.write(lambda session: _quarantine(session, uuid, refusal.reason, target.shown_url),
                              "could not quarantine the refused run")
             refused.append(refusal)
             continue
